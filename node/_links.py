@@ -338,11 +338,15 @@ DELIVER = Decision(True, 1, 0.0, False, False, None)
 
 
 class _Chain:
-    """Gilbert–Elliott state over seqs, cached forward with a checkpoint every 1024 seqs."""
+    """Gilbert–Elliott state over seqs: a forward cursor plus a checkpoint every 64 seqs.
+
+    Any seq up to the largest one reached costs at most 64 steps; a larger one advances
+    the cursor through every seq in between (transport losses included).
+    """
 
     __slots__ = ("bad", "enter", "key", "leave", "marks", "seq")
 
-    _EVERY = 1024
+    _EVERY = 64
 
     def __init__(self, key: int, p_enter: float, p_leave: float) -> None:
         self.key = key
@@ -354,19 +358,21 @@ class _Chain:
         self.marks = bytearray(1)
 
     def bad_at(self, n: int) -> bool:
-        """State at seq n (True = bad); O(n - cached seq) forward, O(1024) backward."""
+        """State at seq n (True = bad)."""
         s = self.seq
         if n == s:
             return self.bad
-        if n < s:
+        every = self._EVERY
+        marks = self.marks
+        j = n // every
+        if n < s or (j < len(marks) and j * every > s):
             if n < 0:
                 raise ValueError(f"sequence number must be non-negative, got {n}")
-            j = n // self._EVERY
-            s = j * self._EVERY
-            bad = bool(self.marks[j])
+            s = j * every
+            bad = bool(marks[j])
         else:
             bad = self.bad
-        key, enter, leave, marks, every = self.key, self.enter, self.leave, self.marks, self._EVERY
+        key, enter, leave = self.key, self.enter, self.leave
         while s < n:
             s += 1
             u = uniform(key, s)
