@@ -93,11 +93,11 @@ def _in_range(
 ) -> float:
     v = _number(params, key, where, default)
     if (v <= lo if open_lo else v < lo) or v > hi:
-        left = "(" if open_lo else "["
-        hi_txt = "inf" if math.isinf(hi) else f"{hi:g}"
-        raise ScenarioError(
-            f"{where}.{key}: expected a number in {left}{lo:g}, {hi_txt}], got {v!r}"
-        )
+        if math.isinf(hi):
+            want = f"a number {'>' if open_lo else '>='} {lo:g}"
+        else:
+            want = f"a number in {'(' if open_lo else '['}{lo:g}, {hi:g}]"
+        raise ScenarioError(f"{where}.{key}: expected {want}, got {v!r}")
     return v
 
 
@@ -408,7 +408,7 @@ def _delay_sampler(p: Mapping[str, Any]) -> Callable[[float], float]:
         mean, sd = p["mean_ms"], p["sd_ms"]
         # Truncation at zero by inverse CDF, on the upper tail: X = mean - sd * inv(S0 * v),
         # S0 = P(X > 0), v = 1 - u in (0, 1]; accurate also when S0 is tiny (negative mean).
-        s0 = _STD_NORMAL.cdf(mean / sd)
+        s0 = 0.5 * math.erfc(-mean / (sd * math.sqrt(2.0)))  # erfc keeps the far tail
         inv = _STD_NORMAL.inv_cdf
 
         def normal(u: float) -> float:

@@ -314,7 +314,7 @@ def test_params_defaults_are_filled() -> None:
         (
             "delay",
             {"distribution": "normal", "mean_ms": 3, "sd_ms": 0},
-            r"sd_ms: expected a number in \(0",
+            r"sd_ms: expected a number > 0, got 0",
         ),
         ("delay", {"distribution": "pareto", "scale_ms": 1, "shape": 2, "ms": 3}, r"\.ms: unknown"),
         (
