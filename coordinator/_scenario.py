@@ -93,7 +93,12 @@ DEFAULTS: Mapping[str, Mapping[str, Any]] = {
     "algorithm.step.constant": {"step": 0.05},
     "algorithm.step.diminishing": {"scale": 0.5, "power": 0.6},
     "timing": {"period_ms": 1.0, "jitter": 0.1, "speed_spread": 0.0, "round_timeout_ms": 500.0},
-    "telemetry": {"every_ms": 20.0, "every_iterations": 0},
+    "telemetry": {
+        "every_ms": 20.0,
+        "every_iterations": 0,
+        "batch_ms": 50.0,
+        "delay_samples": False,
+    },
     "network": {"transport": "tcp", "host": "127.0.0.1"},
     "fault": {"start_s": 0.0, "start_iteration": 0},
     "fault.burst-loss": {"loss_good": 0.0, "loss_bad": 1.0},
@@ -122,9 +127,11 @@ _SHAPE_PARAMS: Mapping[str, tuple[str, ...]] = {
     "random-geometric": ("radius",),
     "erdos-renyi": ("p",),
     "small-world": ("k", "p"),
-    "file": ("file",),
+    "file": ("file", "directed"),
 }
-_TOPOLOGY_KEYS = ("shape", "radius", "p", "k", "rows", "cols", "file")
+_TOPOLOGY_KEYS = ("shape", "radius", "p", "k", "rows", "cols", "file", "directed")
+#: fewest agents each shape can be built with (a ring of two would repeat its one edge)
+_MIN_AGENTS = {"ring": 3, "small-world": 3}
 _OBJECTIVE_PARAMS: Mapping[str, tuple[str, ...]] = {
     "quadratic": ("spread", "curvature", "condition"),
     "logistic": ("samples", "reg"),
@@ -141,7 +148,18 @@ _OBJECTIVE_KEYS = (
     "delta",
     "function",
 )
-_ALGORITHM_KEYS = ("name", "step", "missing", "gain", "priority_averaging", "mode", "module")
+_ALGORITHM_KEYS = (
+    "name",
+    "step",
+    "missing",
+    "gain",
+    "priority_averaging",
+    "mode",
+    "scale",
+    "step_rule",
+    "average_priorities",
+    "module",
+)
 _STEP_KEYS = ("rule", "step", "scale", "power")
 _AGENT_KEYS = ("id", "target", "curvature", "initial_state", "initial_priorities", "speed")
 _WINDOW_S = ("start_s", "duration_s")
@@ -225,7 +243,8 @@ class Scenario:
     algorithm: dict[str, Any]
     timing: dict[str, Any]
     telemetry: dict[str, Any]
-    #: normalized [[fault]] tables: "index", "kind", "scope" or "agents", window, parameters
+    #: normalized [[fault]] tables: "index", "kind", "scope" (link faults) or "agents"
+    #: (process faults), the window keys, and "params" (the kind's parameters, filled)
     faults: tuple[dict[str, Any], ...]
     #: agent id -> its [[agent]] overrides (without "id"); these win over table defaults
     agent_overrides: dict[int, dict[str, Any]]
@@ -283,9 +302,10 @@ class Scenario:
 def _fault_to_table(fault: Mapping[str, Any]) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for key, value in fault.items():
-        if key == "index" or value is None:
-            continue
-        out["links" if key == "scope" else key] = copy.deepcopy(value)
+        if key == "params":  # the file keeps a fault's parameters beside its kind
+            out.update({k: copy.deepcopy(v) for k, v in value.items() if v is not None})
+        elif key != "index" and value is not None:
+            out["links" if key == "scope" else key] = copy.deepcopy(value)
     return out
 
 
@@ -479,11 +499,14 @@ def check_topology_params(
     own = _SHAPE_PARAMS[shape]
     t.check_keys(_TOPOLOGY_KEYS, used=("shape", *own), by=f'shape "{shape}"')
     out: dict[str, Any] = {"shape": shape}
+    if agents < _MIN_AGENTS.get(shape, 2):
+        t.fail("shape", f'"{shape}" needs [swarm].agents >= {_MIN_AGENTS[shape]}, got {agents}')
     if shape == "grid":
         _grid(t, agents, out)
     elif shape == "random-geometric":
         # nodes in the unit square (Penrose, Random Geometric Graphs, 2003)
-        out["radius"] = t.number("radius", lo=0.0, lo_open=True)
+        # beyond sqrt(2), the unit square's diagonal, every pair is linked already
+        out["radius"] = t.number("radius", lo=0.0, lo_open=True, hi=math.sqrt(2))
     elif shape == "erdos-renyi":
         out["p"] = t.number("p", lo=0.0, lo_open=True, hi=1.0)
     elif shape == "small-world":
@@ -502,6 +525,8 @@ def check_topology_params(
         if not path.is_file():
             t.fail("file", f'"{name}" is not a file (looked for {path})')
         out["file"] = str(path.resolve())
+        if "directed" in t.data:  # absent: the file says (edge list marker, GraphML flag)
+            out["directed"] = t.boolean("directed")
     return out
 
 
@@ -587,37 +612,46 @@ def _algorithm(t: _Table) -> dict[str, Any]:
             "an algorithm name",
             default=default_name,
         )
-    out: dict[str, Any] = {"name": name, "step": _step(t)}
+    out: dict[str, Any] = {"name": name, "step": _step(t, "step")}
     # Algorithm-specific keys pass through unchanged; their defaults belong to the algorithm.
-    if "missing" in t.data:
-        out["missing"] = t.string("missing", None, "a string")
-    if "gain" in t.data:
-        out["gain"] = t.number("gain", lo=0.0)
-    if "priority_averaging" in t.data:
-        value = t.data["priority_averaging"]
-        if not isinstance(value, bool | str):
-            t.fail("priority_averaging", f"expected true, false or a string, got {_show(value)}")
-        out["priority_averaging"] = value
-    if "mode" in t.data:
-        out["mode"] = t.string("mode", None, "a string")
+    for key in _ALGORITHM_KEYS[2:]:
+        if key not in t.data or key == "module":
+            continue
+        if key in ("missing", "mode"):
+            out[key] = t.string(key, None, "a string")
+        elif key == "gain":
+            out[key] = t.number(key, lo=0.0)
+        elif key == "scale":
+            out[key] = t.number(key, lo=0.0, lo_open=True)
+        elif key == "average_priorities":
+            out[key] = t.boolean(key)
+        elif key == "step_rule":
+            # "plan" hands the [algorithm].step rule on; otherwise a step of its own
+            out[key] = "plan" if t.data[key] == "plan" else _step(t, key, also='"plan", ')
+        else:  # priority_averaging: a switch or a variant name
+            value = t.data[key]
+            if not isinstance(value, bool | str) or value == "":
+                t.fail(key, f"expected true, false or a variant name, got {_show(value)}")
+            out[key] = value
     if module is not None:
         out["module"] = module
     return out
 
 
-def _step(t: _Table) -> float | dict[str, Any]:
-    if "step" not in t.data:
+def _step(t: _Table, key: str, *, also: str = "") -> float | dict[str, Any]:
+    """A step rule: a constant > 0, or a {rule, ...} table (diminishing steps filled)."""
+    if key not in t.data:
         return DEFAULTS["algorithm"]["step"]
-    value = t.data["step"]
+    value = t.data[key]
     if not isinstance(value, Mapping):
         if not _is_number(value):
             t.fail(
-                "step",
-                'expected a number > 0 or a table {rule = "constant" | "diminishing", ...},'
-                f" got {_show(value)}",
+                key,
+                f'expected {also}a number > 0 or a table {{rule = "constant" | "diminishing",'
+                f" ...}}, got {_show(value)}",
             )
-        return t.number("step", lo=0.0, lo_open=True)
-    s = t.sub("step")
+        return t.number(key, lo=0.0, lo_open=True)
+    s = t.sub(key)
     s.check_keys(_STEP_KEYS)
     rule = s.choice("rule", ("constant", "diminishing"), default=DEFAULTS["algorithm.step"]["rule"])
     if rule == "constant":
@@ -655,6 +689,8 @@ def _telemetry(t: _Table) -> dict[str, Any]:
     return {
         "every_ms": t.number("every_ms", lo=0.0, lo_open=True, default=dt["every_ms"]),
         "every_iterations": t.integer("every_iterations", lo=0, default=dt["every_iterations"]),
+        "batch_ms": t.number("batch_ms", lo=0.0, lo_open=True, default=dt["batch_ms"]),
+        "delay_samples": t.boolean("delay_samples", default=dt["delay_samples"]),
     }
 
 
@@ -736,7 +772,7 @@ def _fault(t: _Table, index: int, n: int) -> dict[str, Any]:
     else:
         out["agents"] = _id_list(t, "agents", n)
     out.update(_window(t, kind))
-    out.update(_fault_params(t, kind, distribution))
+    out["params"] = _fault_params(t, kind, distribution)
     return out
 
 
@@ -1179,7 +1215,7 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[topology].radius",
             "required by random-geometric",
-            "connection radius between agents placed in the unit square, > 0",
+            "link range between agents placed in the unit square, in (0, sqrt(2)]",
         ),
         (
             "[topology].p",
@@ -1197,6 +1233,11 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "[topology].file",
             "required by file",
             "edge list or GraphML file, relative to the scenario file",
+        ),
+        (
+            "[topology].directed",
+            "as the file says",
+            "file: true reads one-way links, false makes every link two-way",
         ),
         ("[objective].kind", _lit(D["objective"]["kind"]), ", ".join(OBJECTIVE_KINDS)),
         (
@@ -1282,7 +1323,22 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "the algorithm's",
             "algorithm-specific priority averaging switch (true, false or a variant name)",
         ),
-        ("[algorithm].mode", "the algorithm's", "algorithm-specific variant name"),
+        (
+            "[algorithm].mode",
+            "the algorithm's",
+            'algorithm-specific variant (push-sum: "average" or "optimize")',
+        ),
+        ("[algorithm].scale", "the algorithm's", "push-sum: alpha_t = scale / sqrt(t + 1), > 0"),
+        (
+            "[algorithm].step_rule",
+            "the algorithm's",
+            'push-sum: "plan" (use [algorithm].step) or a step of its own, like step',
+        ),
+        (
+            "[algorithm].average_priorities",
+            "the algorithm's",
+            "ratio-consensus: also average the priority vectors",
+        ),
         (
             "[algorithm].module",
             "absent",
@@ -1313,6 +1369,16 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "[telemetry].every_iterations",
             _lit(D["telemetry"]["every_iterations"]),
             "sample every this many iterations, >= 0; 0 = automatic",
+        ),
+        (
+            "[telemetry].batch_ms",
+            _lit(D["telemetry"]["batch_ms"]),
+            "how long an agent gathers samples before pushing a batch, > 0",
+        ),
+        (
+            "[telemetry].delay_samples",
+            _lit(D["telemetry"]["delay_samples"]),
+            "also report every injected delay (for delay statistics per link)",
         ),
         ("[network].transport", _lit(D["network"]["transport"]), '"tcp" or "ipc" (local only)'),
         ("[network].host", _lit(D["network"]["host"]), "address the agents bind on"),
