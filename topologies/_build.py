@@ -86,7 +86,7 @@ class Topology:
         if bad:
             raise TopologyError(
                 f"topology: agents must be the integers 0..{n - 1}; found labels"
-                f" {_listing(sorted(bad, key=repr))}"
+                f" {_listing([repr(v) for v in sorted(bad, key=repr)])}"
             )
         loops = sorted(u for u, _ in nx.selfloop_edges(g))
         if loops:
@@ -197,8 +197,13 @@ def _checked_positions(
 # Connectivity --------------------------------------------------------------------------
 
 
-def _connectivity_problem(graph: nx.Graph) -> str | None:
-    """None if connected (strongly, for a digraph); else what is wrong, in agent terms."""
+def _connectivity_problem(graph: nx.Graph, directed: bool | None = None) -> str | None:
+    """None if connected (strongly, for a digraph); else what is wrong, in agent terms.
+
+    ``directed=False`` reads a (symmetric) digraph as undirected, for the plain message.
+    """
+    if directed is False and graph.is_directed():
+        graph = graph.to_undirected(as_view=True)
     n = graph.number_of_nodes()
     if n == 0:
         return "the graph has no agents; connectivity is undefined for the null graph"
@@ -237,8 +242,10 @@ def require_connected(topology_or_graph: Topology | nx.Graph, *, where: str = "t
     agents cut off from agent 0 (the lowest label), for a digraph split into those that
     cannot be reached from it and those that cannot reach it. The null graph is refused.
     """
+    directed: bool | None = None
     if isinstance(topology_or_graph, Topology):
         graph: nx.Graph = topology_or_graph.graph
+        directed = topology_or_graph.directed
     elif isinstance(topology_or_graph, nx.Graph):
         graph = topology_or_graph
     else:
@@ -246,7 +253,7 @@ def require_connected(topology_or_graph: Topology | nx.Graph, *, where: str = "t
             f"{where}: expected a Topology or a networkx graph,"
             f" got {type(topology_or_graph).__name__}"
         )
-    problem = _connectivity_problem(graph)
+    problem = _connectivity_problem(graph, directed)
     if problem is not None:
         raise TopologyError(f"{where}: {problem}")
 
@@ -280,7 +287,7 @@ def from_graph(
     if bad:
         raise TopologyError(
             f"{where}: agent labels must be the integers 0..{n - 1};"
-            f" got {_listing(sorted(bad, key=repr))}"
+            f" got {_listing([repr(v) for v in sorted(bad, key=repr)])}"
         )
     loops = sorted({int(u) for u, _ in nx.selfloop_edges(graph)})
     if loops:
@@ -295,7 +302,7 @@ def from_graph(
         digraph.add_edge(int(u), int(v))
         if not (graph.is_directed() and is_directed):
             digraph.add_edge(int(v), int(u))
-    problem = _connectivity_problem(digraph)
+    problem = _connectivity_problem(digraph, is_directed)
     if problem is not None:
         raise TopologyError(f"{where}: {problem}")
     return Topology(
@@ -468,7 +475,7 @@ def build(shape: str, n: int, *, seed: int, where: str = "topology", **params: A
         graph.add_edge(v, u)
     if shape in _RANDOM_SHAPES:
         values["seed"] = int(seed)
-    problem = _connectivity_problem(graph)
+    problem = _connectivity_problem(graph, directed=False)
     if problem is not None:
         settings = ", ".join(f"{k}={v}" for k, v in values.items())
         raise TopologyError(

@@ -158,7 +158,7 @@ class SpectralFacts:
     #: rows nor columns of W sum to one
     perron: np.ndarray | None
     #: iterations to shrink the disagreement by 1e-3, ceil(log(1e-3) / log(rho));
-    #: None if rho is None or rho >= 1 (no convergence)
+    #: None if rho is None or rho >= 1 - 1e-10 (no convergence, to rounding)
     mixing_time_hint: int | None
 
     def as_dict(self) -> dict[str, Any]:
@@ -258,7 +258,7 @@ def spectral_facts(W: np.ndarray, *, where: str = "mixing matrix") -> SpectralFa
     else:
         perron, rho = None, None
 
-    if rho is None or rho >= 1.0:
+    if rho is None or rho >= 1.0 - _TOL:  # rounding leaves a repeated eigenvalue 1 just below 1
         hint = None
     elif rho <= 1e-300:
         hint = 1

@@ -142,7 +142,7 @@ def _read_graphml(p: Path, name: str, directed: bool | None) -> tuple[nx.Graph, 
             f"{name}: GraphML node ids mix the forms '3' and 'n3'; expected one form throughout"
         )
     n = graph.number_of_nodes()
-    wrong = sorted(label for label, i in mapping.items() if i >= n)
+    wrong = [repr(label) for label in sorted(label for label, i in mapping.items() if i >= n)]
     if wrong or len(set(mapping.values())) != n:
         missing = sorted(set(range(n)) - set(mapping.values()))
         raise TopologyError(
