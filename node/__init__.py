@@ -17,6 +17,7 @@ from node._algorithm import (  # noqa: E402
     register_algorithm,
 )
 from node._dgd import DGD  # noqa: E402
+from node import _gradient_tracking, _priority, _pushsum, _ratio  # noqa: E402, F401  (register)
 from node._errors import AgentFailure, ObjectiveError, ProtocolError, WireError  # noqa: E402
 from node._memory import run_in_memory  # noqa: E402
 from node._objectives import Objective, Quadratic, objective_from_spec  # noqa: E402

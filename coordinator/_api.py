@@ -1,0 +1,68 @@
+"""The Python API: one call runs a scenario (a path or a dict) and returns its results."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from coordinator._demos import demo_path
+from coordinator._run import RunOptions, RunResult, execute
+from coordinator._scenario import Scenario, load_scenario
+from coordinator._swarm import Swarm, build_swarm
+
+__all__ = ["check", "load", "run"]
+
+
+def load(scenario: str | Path | Mapping[str, Any] | Scenario) -> Swarm:
+    """Validate a scenario (path, demo name, dict or Scenario) and build its swarm.
+
+    Raises ScenarioError naming the file and key; nothing is started.
+    """
+    if isinstance(scenario, Scenario):
+        return build_swarm(scenario)
+    if isinstance(scenario, str) and not Path(scenario).exists() and demo_path(scenario):
+        scenario = demo_path(scenario)  # type: ignore[assignment]
+    return build_swarm(load_scenario(scenario))  # type: ignore[arg-type]
+
+
+def run(
+    scenario: str | Path | Mapping[str, Any] | Scenario | Swarm,
+    *,
+    out: str | Path | None = None,
+    runs_root: str | Path = "runs",
+    view: Any = None,
+    baseline: bool = False,
+    **options: Any,
+) -> RunResult:
+    """Run a scenario to the end and return summary, metrics series and link rows.
+
+    ``baseline=True`` also runs the same scenario without its faults (in ``<out>/baseline``)
+    and puts its figures beside the faulty run's under ``summary["baseline"]``.
+    """
+    swarm = scenario if isinstance(scenario, Swarm) else load(scenario)
+    opts = RunOptions(out=None if out is None else Path(out), runs_root=Path(runs_root),
+                      view=view, **options)
+    result = execute(swarm, opts)
+    if baseline:
+        from coordinator._baseline import attach_baseline
+
+        attach_baseline(swarm, result, opts)
+    return result
+
+
+def check(scenario: str | Path | Mapping[str, Any] | Scenario) -> dict[str, Any]:
+    """The resolved scenario, the graph facts and the reference optimum; starts nothing."""
+    import topologies as topo
+
+    swarm = load(scenario)
+    facts = topo.graph_facts(swarm.topology).as_dict()
+    ref = swarm.reference
+    return {
+        "scenario": swarm.scenario.to_dict(),
+        "resolved_toml": swarm.scenario.to_toml(),
+        "graph": facts,
+        "reference": {"x_star": ref.x_star.tolist(), "F_star": ref.F_star,
+                      "method": ref.method, "tolerance": ref.tolerance},
+        "intended_priorities": swarm.intended.tolist(),
+    }

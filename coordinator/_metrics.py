@@ -1,0 +1,261 @@
+"""Metrics from recorded telemetry, and the per-link message accounting.
+
+Every figure here is computed from what the agents reported during the run; nothing is
+estimated from the scenario.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from coordinator._reference import Reference, total_objective
+from node._objectives import Objective
+
+__all__ = [
+    "AgentRecord",
+    "MessageTotals",
+    "link_accounting",
+    "metric_series",
+    "time_to_tolerance",
+]
+
+# positions in a link counter row (see node._runtime.COUNTER_FIELDS)
+RECEIVED, DELIVERED, DROPPED, REJECTED, DUPLICATED, LOST, MAX_SEQ, HELD, FIRST_SEQ = range(9)
+MEDIAN, P95, MAX = 9, 10, 11
+
+
+@dataclass(slots=True)
+class AgentRecord:
+    """What the coordinator knows of one incarnation (epoch) of one agent."""
+
+    agent: int
+    epoch: int
+    offset: float = 0.0  # node clock minus coordinator clock
+    #: samples: (iteration, t_s since go on the coordinator clock, x, priorities, value, row)
+    samples: list[tuple[int, float, list[float], list[float] | None, float, Any]] = field(
+        default_factory=list
+    )
+    links: dict[int, dict[int, list[Any]]] = field(default_factory=dict)
+    counters: dict[str, Any] = field(default_factory=dict)
+    final: dict[str, Any] | None = None
+    #: False once the process is gone without a final report (crashed)
+    alive: bool = True
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class MessageTotals:
+    """Swarm-wide message accounting: sent = delivered + dropped_injected + lost_transport
+    + rejected + in_flight exactly; duplicates are extra copies and sit apart."""
+
+    #: data messages published by every agent (per link: one copy per out-neighbour)
+    sent: int
+    #: seen by the receiving algorithm (first copies only)
+    delivered: int
+    #: dropped by an injected fault
+    dropped_injected: int
+    #: never arrived, not explained by injection (queue limits, dead peers)
+    lost_transport: int
+    #: refused: corrupted, malformed, replayed, or from an old epoch
+    rejected: int
+    #: duplicate copies injected (not part of the sum)
+    duplicated: int
+    #: sent but not yet seen by a live receiver at stop (including held by delays)
+    in_flight: int
+
+    def as_dict(self) -> dict[str, int]:
+        return {
+            "sent": self.sent,
+            "delivered": self.delivered,
+            "dropped_injected": self.dropped_injected,
+            "lost_transport": self.lost_transport,
+            "rejected": self.rejected,
+            "duplicated": self.duplicated,
+            "in_flight": self.in_flight,
+        }
+
+
+def _sent_by_epoch(records: Sequence[AgentRecord]) -> dict[tuple[int, int], tuple[int, bool]]:
+    """(agent, epoch) -> (messages sent, incarnation still alive at stop)."""
+    out = {}
+    for r in records:
+        c = r.final["counters"] if r.final else r.counters
+        out[(r.agent, r.epoch)] = (int(c.get("sent", 0)), r.final is not None)
+    return out
+
+
+def link_accounting(
+    records: Sequence[AgentRecord], links: Sequence[tuple[int, int]]
+) -> tuple[list[dict[str, Any]], MessageTotals]:
+    """Rows of links.csv and the swarm totals.
+
+    Per directed link and sender epoch, the receiver's incarnations are taken in order.
+    A receiver incarnation that died (no final report) loses what it held; sequence numbers
+    between what one incarnation last reported and the next one first saw went to a dead
+    peer and count as lost in transport. For a sender incarnation that died, nothing is in
+    flight any more: what no receiver saw is lost.
+    """
+    sent = _sent_by_epoch(records)
+    by_agent: dict[int, list[AgentRecord]] = {}
+    for r in records:
+        by_agent.setdefault(r.agent, []).append(r)
+    for lst in by_agent.values():
+        lst.sort(key=lambda r: r.epoch)
+    rows = []
+    tot = dict.fromkeys(
+        ("sent", "delivered", "dropped_injected", "lost_transport", "rejected", "duplicated",
+         "in_flight"), 0)
+    for src, dst in links:
+        row = dict.fromkeys(tot, 0)
+        medians, p95s, maxes, weights = [], [], [], []
+        sender_epochs = sorted(e for (a, e) in sent if a == src)
+        for se in sender_epochs:
+            s_count, s_alive = sent[(src, se)]
+            max_seen = -1
+            for rec in by_agent.get(dst, []):
+                c = rec.final["links"] if rec.final else rec.links
+                per = c.get(src, {}).get(se)
+                if per is None:
+                    continue
+                s_count = max(s_count, int(per[MAX_SEQ]) + 1)
+            for rec in by_agent.get(dst, []):
+                live = rec.final is not None
+                c = rec.final["links"] if rec.final else rec.links
+                per = c.get(src, {}).get(se)
+                if per is None:
+                    continue
+                row["delivered"] += int(per[DELIVERED])
+                row["dropped_injected"] += int(per[DROPPED])
+                row["rejected"] += int(per[REJECTED])
+                row["duplicated"] += int(per[DUPLICATED])
+                lost = int(per[LOST])
+                first = int(per[FIRST_SEQ])
+                # The node counts the gap before its first message from -1; for a restarted
+                # receiver only the part after what the previous incarnation saw is lost.
+                row["lost_transport"] += (lost - first) + max(0, first - (max_seen + 1))
+                held = int(per[HELD])
+                if live and s_alive:
+                    row["in_flight"] += held
+                else:
+                    row["lost_transport"] += held
+                max_seen = max(max_seen, int(per[MAX_SEQ]))
+                if per[MEDIAN] is not None and int(per[DELIVERED]) > 0:
+                    medians.append(per[MEDIAN])
+                    p95s.append(per[P95])
+                    maxes.append(per[MAX])
+                    weights.append(int(per[DELIVERED]))
+            beyond = s_count - (max_seen + 1)
+            receiver_alive = any(r.final is not None for r in by_agent.get(dst, []))
+            if s_alive and receiver_alive:
+                row["in_flight"] += beyond
+            else:
+                row["lost_transport"] += beyond
+            row["sent"] += s_count
+        for k in tot:
+            tot[k] += row[k]
+        rows.append(
+            {
+                "from": src,
+                "to": dst,
+                **row,
+                # several incarnations: the delivery-weighted median, the largest p95 and max
+                "delay_median_ms": None
+                if not weights
+                else float(np.average(medians, weights=weights)),
+                "delay_p95_ms": None if not weights else float(max(p95s)),
+                "delay_max_ms": None if not weights else float(max(maxes)),
+            }
+        )
+    return rows, MessageTotals(**tot)
+
+
+def metric_series(
+    records: Sequence[AgentRecord],
+    n: int,
+    objectives: Sequence[Objective],
+    intended: np.ndarray,
+    reference: Reference,
+    *,
+    by_iteration: bool,
+    max_points: int = 600,
+) -> list[dict[str, Any]]:
+    """The metrics.csv rows: at each grid point, every agent's latest sample at or before it.
+
+    Rounds mode uses the sampled iterations as the grid (every agent samples the same
+    iterations), async mode a time grid. An agent not yet sampled at a grid point is left
+    out of that point.
+    """
+    per_agent: dict[int, list[tuple]] = {}
+    for r in records:
+        per_agent.setdefault(r.agent, []).extend(r.samples)
+    if not per_agent:
+        return []
+    for lst in per_agent.values():
+        lst.sort(key=lambda s: (s[1], s[0]))
+    col = 0 if by_iteration else 1
+    keys = np.unique(np.concatenate([[s[col] for s in lst] for lst in per_agent.values()]))
+    if len(keys) > max_points:
+        idx = np.unique(np.linspace(0, len(keys) - 1, max_points).round().astype(int))
+        keys = keys[idx]
+    agents = sorted(per_agent)
+    cols = {}
+    for a in agents:
+        lst = per_agent[a]
+        if by_iteration:
+            lst = sorted(lst, key=lambda s: s[0])
+        cols[a] = (
+            np.array([s[col] for s in lst], dtype=float),
+            np.array([s[2] for s in lst], dtype=float),
+            lst,
+        )
+    rows = []
+    for key in keys:
+        xs, ws, its, ts = [], [], [], []
+        for a in agents:
+            k_arr, x_arr, lst = cols[a]
+            pos = int(np.searchsorted(k_arr, key, side="right")) - 1
+            if pos < 0:
+                continue
+            s = lst[pos]
+            xs.append(x_arr[pos])
+            its.append(s[0])
+            ts.append(s[1])
+            if s[3] is not None:
+                ws.append(s[3])
+        if not xs:
+            continue
+        X = np.asarray(xs)
+        x_hat = X.mean(axis=0)
+        gap = total_objective(objectives, intended, x_hat) - reference.F_star
+        cons = float(np.max(np.linalg.norm(X - x_hat, axis=1)))
+        if ws:
+            Wm = np.asarray(ws)
+            w_bar = Wm.mean(axis=0)
+            pdis = float(np.max(np.linalg.norm(Wm - w_bar, axis=1)))
+            pdrift = float(np.linalg.norm(w_bar - intended))
+        else:
+            pdis = pdrift = 0.0
+        rows.append(
+            {
+                "t_s": float(np.median(ts)) if by_iteration else float(key),
+                "gap": float(gap),
+                "consensus_error": cons,
+                "priority_disagreement": pdis,
+                "priority_drift": pdrift,
+                "iteration_min": int(min(its)),
+                "iteration_median": float(np.median(its)),
+                "iteration_max": int(max(its)),
+            }
+        )
+    return rows
+
+
+def time_to_tolerance(rows: Sequence[Mapping[str, Any]], threshold: float) -> float | None:
+    """First time the gap is at or below ``threshold`` (None if never)."""
+    for r in rows:
+        if r["gap"] <= threshold:
+            return float(r["t_s"])
+    return None

@@ -1,0 +1,707 @@
+"""One run: launch, handshake, start barrier, fault timeline, telemetry, stop, results.
+
+The coordinator never sits on the data path: agents talk to their neighbours directly and
+only report to the coordinator in telemetry batches.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import getpass
+import os
+import platform
+import signal
+import socket
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zmq
+
+from coordinator._launch import ForkServer
+from coordinator._metrics import AgentRecord, link_accounting, metric_series, time_to_tolerance
+from coordinator._reference import total_objective
+from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
+from coordinator._swarm import Swarm
+from node._errors import WireError
+from node._wire import decode_control, encode_control
+from topologies._errors import SwarmrigError
+
+__all__ = ["RunFailed", "RunOptions", "RunResult", "execute"]
+
+VERSION = "0.1.0"
+HEARTBEAT_S = 0.5
+
+
+class RunFailed(SwarmrigError):
+    """The run could not proceed (agents never ready, coordinator interrupted early)."""
+
+
+@dataclass(slots=True, kw_only=True)
+class RunOptions:
+    #: the run directory itself; default runs/<name>-<UTC timestamp>
+    out: Path | None = None
+    runs_root: Path = Path("runs")
+    #: "live" (rich live view), "quiet" (nothing), or a callable getting snapshots
+    view: Any = None
+    #: control endpoint to bind; tcp://127.0.0.1:* by default
+    listen: str | None = None
+    #: fork the agents here; False waits for agents started by hand (other machines)
+    launch_local: bool = True
+    heartbeat_timeout: float = 3.0
+    handshake_timeout: float | None = None
+    #: label written to run.json and summary.json (e.g. "baseline")
+    label: str | None = None
+
+
+@dataclass(slots=True)
+class RunResult:
+    summary: dict[str, Any]
+    metrics: list[dict[str, Any]]
+    links: list[dict[str, Any]]
+    run_dir: Path
+    exit_code: int
+
+
+@dataclass(slots=True)
+class _Agent:
+    """The coordinator's view of one agent id across its incarnations."""
+
+    id: int
+    epoch: int = -1
+    ident: bytes | None = None
+    pid: int | None = None
+    host: str | None = None
+    endpoint: str | None = None
+    ready: bool = False
+    running: bool = False
+    finished: bool = False
+    dead: bool = False
+    #: a crash fault killed it on purpose; a restart may follow
+    crashed_on_purpose: bool = False
+    restart_pending: bool = False
+    restart_state: str = "initial"
+    start_iteration: int = 0
+    pings: dict[int, float] = field(default_factory=dict)
+    rtt_best: float = float("inf")
+    offset: float = 0.0
+    records: list[AgentRecord] = field(default_factory=list)
+
+    @property
+    def record(self) -> AgentRecord:
+        return self.records[-1]
+
+
+class _Stop(Exception):
+    def __init__(self, reason: str, code: int) -> None:
+        self.reason, self.code = reason, code
+
+
+class Coordinator:
+    def __init__(self, swarm: Swarm, options: RunOptions) -> None:
+        self.swarm = swarm
+        self.opt = options
+        self.s = swarm.scenario
+        self.n = swarm.n
+        self.clock = time.monotonic
+        self.agents = [_Agent(i) for i in range(self.n)]
+        self.by_ident: dict[bytes, int] = {}
+        self.fork: ForkServer | None = None
+        self.ctx: zmq.Context | None = None
+        self.router: zmq.Socket | None = None
+        self.t_launch = self.clock()
+        self.t_go: float | None = None
+        self.t_end: float | None = None
+        self.stop_requested: str | None = None
+        self.exit_reason = "running"
+        self.exit_code = 0
+        self.verdict: str | None = None
+        self.failures: list[str] = []
+        self.first_diverged: str | None = None
+        self.active_faults: dict[int, dict[str, Any]] = {}
+        self.directive_seq = 0
+        self.directives: dict[int, dict[str, Any]] = {}
+        self.timeline: list[tuple[float, int, str, Callable[[], None]]] = []
+        self.unexpected: list[str] = []
+        self.pending_peer_updates: list[int] = []
+        out = options.out or RunDir.default_path(self.s.name, options.runs_root)
+        self.dir = RunDir(Path(out))
+        self.view = options.view
+        self.run_json: dict[str, Any] = {}
+
+    # -- helpers -----------------------------------------------------------------------
+    def now_s(self) -> float:
+        return 0.0 if self.t_go is None else self.clock() - self.t_go
+
+    def send(self, agent: _Agent, kind: str, **fields: Any) -> None:
+        if agent.ident is None or self.router is None:
+            return
+        try:
+            self.router.send_multipart([agent.ident, encode_control(kind, **fields)], zmq.NOBLOCK)
+        except zmq.ZMQError:  # unroutable (dead peer) or full: the agent is gone or stuck
+            pass
+
+    def event(self, kind: str, **fields: Any) -> None:
+        self.dir.event({"t_s": round(self.now_s(), 6), "event": kind, **fields})
+
+    def write_run_json(self, **updates: Any) -> None:
+        self.run_json.update(updates)
+        self.run_json["agents"] = [
+            {"id": a.id, "epoch": a.epoch, "pid": a.pid, "host": a.host, "endpoint": a.endpoint}
+            for a in self.agents
+        ]
+        self.dir.write_json("run.json", self.run_json)
+
+    # -- launch and handshake ----------------------------------------------------------
+    def launch(self) -> None:
+        self.ctx = zmq.Context()
+        self.router = self.ctx.socket(zmq.ROUTER)
+        self.router.setsockopt(zmq.LINGER, 0)
+        self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)
+        self.router.setsockopt(zmq.SNDHWM, 100000)
+        self.router.setsockopt(zmq.RCVHWM, 0)
+        listen = self.opt.listen or "tcp://127.0.0.1:*"
+        self.router.bind(listen)
+        self.endpoint = self.router.getsockopt(zmq.LAST_ENDPOINT).decode()
+        if self.endpoint.startswith("tcp://0.0.0.0:"):
+            self.endpoint = self.endpoint.replace("0.0.0.0", socket.gethostname(), 1)
+        self.write_run_json(
+            versions={
+                "swarmrig": VERSION,
+                "python": platform.python_version(),
+                "pyzmq": zmq.__version__,
+                "libzmq": zmq.zmq_version(),
+                "numpy": np.__version__,
+            },
+            coordinator={"host": socket.gethostname(), "pid": os.getpid(),
+                         "user": getpass.getuser(), "endpoint": self.endpoint},
+            label=self.opt.label,
+            started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            stopped_utc=None,
+            exit="starting",
+            process_group=None,
+        )
+        if self.opt.launch_local:
+            self.fork = ForkServer()
+            self.write_run_json(process_group=self.fork.pgid)
+            for a in self.agents:
+                self.spawn(a)
+
+    def spawn(self, a: _Agent) -> None:
+        assert self.fork is not None
+        log = self.dir.path / "telemetry" / f"agent-{a.id}.log"
+        self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout)
+
+    def on_fork_events(self) -> None:
+        if self.fork is None:
+            return
+        for ev in self.fork.events():
+            if ev["op"] == "spawned":
+                a = self.agents[int(ev["agent"])]
+                a.pid = int(ev["pid"])
+            elif ev["op"] == "exited" and ev.get("agent") is not None:
+                a = self.agents[int(ev["agent"])]
+                if int(ev["pid"]) != a.pid:
+                    continue  # an older incarnation's notice
+                status = int(ev["status"])
+                how = f"killed by signal {-status}" if status < 0 else f"exit status {status}"
+                a.dead = True
+                if a.records and not a.finished:
+                    a.record.alive = False
+                if a.finished or self.stop_requested or a.crashed_on_purpose:
+                    continue
+                msg = f"agent {a.id} died unexpectedly ({how})"
+                self.event("agent-lost", agent=a.id, epoch=a.epoch, pid=a.pid, status=status)
+                self.unexpected.append(msg)
+
+    def on_message(self, ident: bytes, frame: bytes) -> None:
+        try:
+            msg = decode_control(frame)
+        except WireError as exc:
+            self.event("control-rejected", error=str(exc))
+            return
+        kind = msg["t"]
+        if kind == "hello":
+            self.on_hello(ident, msg)
+            return
+        idx = self.by_ident.get(ident)
+        if idx is None:
+            return
+        a = self.agents[idx]
+        if kind == "bound":
+            a.endpoint = msg["endpoint"]
+            if a.running or self.t_go is not None:
+                self.peers_for_restart(a)
+        elif kind == "pong":
+            rtt = self.clock() - float(msg["t_coord"])
+            if rtt < a.rtt_best:
+                a.rtt_best = rtt
+                a.offset = float(msg["t_node"]) - (float(msg["t_coord"]) + rtt / 2)
+                a.record.offset = a.offset
+            if len(a.pings) < 5:
+                self.ping(a)
+        elif kind == "ready":
+            a.ready = True
+            if self.t_go is not None and not a.running:
+                self.go(a)
+        elif kind == "tel":
+            self.on_telemetry(a, msg)
+        elif kind == "final":
+            self.on_telemetry(a, {"samples": [], "links": msg["links"],
+                                  "counters": msg["counters"]})
+            a.record.final = msg
+            a.finished = True
+            self.dir.telemetry(a.id, {"epoch": a.epoch, "final": msg})
+        elif kind == "ack":
+            d = self.directives.get(int(msg["directive"]))
+            if d is not None:
+                self.event("fault-applied", fault=d["index"], directive=int(msg["directive"]),
+                           action=d["action"], agent=a.id,
+                           t_node_s=float(msg["t_node"]) - a.offset - (self.t_go or 0.0))
+        elif kind == "failed":
+            err = str(msg["error"])
+            self.failures.append(err)
+            self.event("agent-failed", agent=a.id, epoch=a.epoch, error=err)
+            if err.startswith("diverged") and self.first_diverged is None:
+                self.first_diverged = err
+
+    def on_hello(self, ident: bytes, msg: dict[str, Any]) -> None:
+        i = int(msg["agent"])
+        if not 0 <= i < self.n:
+            self.router.send_multipart(  # type: ignore[union-attr]
+                [ident, encode_control("refuse", reason=f"agent id {i} is not in 0..{self.n - 1}")]
+            )
+            return
+        a = self.agents[i]
+        if a.ident is not None and not a.dead and not a.restart_pending:
+            self.router.send_multipart(  # type: ignore[union-attr]
+                [ident, encode_control("refuse", reason=f"agent {i} has already joined")]
+            )
+            return
+        restart = a.epoch >= 0
+        a.epoch += 1
+        a.ident = ident
+        self.by_ident[ident] = i
+        a.host = str(msg["host"])
+        if not self.opt.launch_local or a.pid is None or restart:
+            a.pid = int(msg["pid"])
+        a.dead = a.finished = a.ready = a.running = False
+        a.pings.clear()
+        a.rtt_best = float("inf")
+        start_state = None
+        start_iteration = 0
+        if restart and a.records:
+            last = a.record
+            a.crashed_on_purpose = False
+            if last.samples:
+                start_iteration = int(last.samples[-1][0])
+                if a.restart_state == "last":
+                    start_state = last.samples[-1][2]
+        a.restart_pending = False
+        a.records.append(AgentRecord(agent=i, epoch=a.epoch))
+        a.start_iteration = start_iteration
+        plan = self.swarm.plan(i, a.epoch, start_state=start_state,
+                               start_iteration=start_iteration)
+        self.send(a, "plan", plan=plan)
+        self.ping(a)
+        if restart:
+            self.event("agent-rejoined", agent=i, epoch=a.epoch, pid=a.pid,
+                       start_iteration=start_iteration,
+                       state="last" if start_state is not None else "initial")
+
+    def ping(self, a: _Agent) -> None:
+        seq = len(a.pings)
+        t = self.clock()
+        a.pings[seq] = t
+        self.send(a, "ping", seq=seq, t_coord=t)
+
+    def peers_table(self, i: int) -> dict[int, list[Any]]:
+        top = self.swarm.topology
+        return {j: [self.agents[j].endpoint, self.agents[j].epoch] for j in top.in_neighbours(i)
+                if self.agents[j].endpoint is not None}
+
+    def peers_for_restart(self, a: _Agent) -> None:
+        self.send(a, "peers", peers=self.peers_table(a.id))
+        for j in self.swarm.topology.out_neighbours(a.id):
+            b = self.agents[j]
+            if not b.dead:
+                self.send(b, "peers", peers={a.id: [a.endpoint, a.epoch]})
+
+    def pump(self, timeout_ms: int) -> None:
+        assert self.router is not None
+        if self.router.poll(timeout_ms):
+            while True:
+                try:
+                    ident, frame = self.router.recv_multipart(zmq.NOBLOCK)
+                except zmq.Again:
+                    break
+                except ValueError:
+                    continue  # not a two-frame message: not from one of our agents
+                self.on_message(ident, frame)
+        self.on_fork_events()
+
+    def handshake(self) -> None:
+        timeout = self.opt.handshake_timeout or (20.0 + 0.1 * self.n)
+        deadline = self.clock() + timeout
+        peers_sent = False
+        while True:
+            self.pump(5)
+            self.check_stop_request(before_go=True)
+            if self.unexpected:
+                raise _Stop(self.unexpected[0] + " during start-up", 3)
+            if self.failures:
+                raise _Stop("an agent failed during start-up: " + self.failures[0], 3)
+            if not peers_sent and all(a.endpoint for a in self.agents):
+                for a in self.agents:
+                    self.send(a, "peers", peers=self.peers_table(a.id))
+                peers_sent = True
+            if peers_sent and all(a.ready for a in self.agents):
+                return
+            if self.clock() > deadline:
+                missing = [a.id for a in self.agents if not a.ready]
+                raise _Stop(f"agents {missing} were not ready after {timeout:.0f} s", 3)
+
+    def go(self, a: _Agent) -> None:
+        assert self.t_go is not None
+        start = max(self.t_go, self.clock())
+        a.running = True
+        self.send(a, "go", start_node=start + a.offset,
+                  iteration=a.start_iteration)
+
+    # -- telemetry ---------------------------------------------------------------------
+    def on_telemetry(self, a: _Agent, msg: dict[str, Any]) -> None:
+        rec = a.record
+        t0 = self.t_go or 0.0
+        for s in msg["samples"]:
+            rec.samples.append((int(s[0]), float(s[1]) - a.offset - t0, s[2], s[3], s[4], s[5]))
+        rec.links = {int(k): {int(e): v for e, v in per.items()} for k, per in msg["links"].items()}
+        rec.counters = msg["counters"]
+        if msg["samples"]:
+            self.dir.telemetry(a.id, {"epoch": a.epoch, "offset": a.offset, "t_go": t0,
+                                      "samples": msg["samples"], "links": msg["links"],
+                                      "counters": msg["counters"]})
+
+    # -- the fault timeline ------------------------------------------------------------
+    def schedule(self, at_s: float, what: str, action: Callable[[], None]) -> None:
+        self.timeline.append((at_s, len(self.timeline), what, action))
+        self.timeline.sort()
+
+    def build_timeline(self) -> None:
+        for tf in self.swarm.timed_faults:
+            self.schedule(tf["at_s"], "link-fault-on", lambda tf=tf: self.link_fault(tf, "add"))
+            if tf["until_s"] is not None:
+                self.schedule(tf["until_s"], "link-fault-off",
+                              lambda tf=tf: self.link_fault(tf, "remove"))
+        for pf in self.swarm.process_faults:
+            start = float(pf.get("start_s") or 0.0)
+            dur = pf.get("duration_s")
+            for i in pf["agents"]:
+                if pf["kind"] == "crash":
+                    self.schedule(start, "crash", lambda i=i, pf=pf: self.crash(i, pf))
+                elif pf["kind"] == "pause":
+                    self.schedule(start, "pause", lambda i=i, pf=pf: self.pause(i, pf, True))
+                    self.schedule(start + float(dur), "resume",
+                                  lambda i=i, pf=pf: self.pause(i, pf, False))
+                elif pf["kind"] == "slow":
+                    factor = float(pf["params"]["factor"])
+                    self.schedule(start, "slow", lambda i=i, f=factor, pf=pf: self.slow(i, pf, f))
+                    if dur is not None:
+                        self.schedule(start + float(dur), "slow-end",
+                                      lambda i=i, pf=pf: self.slow(i, pf, 1.0))
+        for entries in self.swarm.armed_faults.values():
+            for e in entries:
+                self.active_faults[int(e["fault"]["index"])] = e["fault"]
+
+    def link_fault(self, tf: dict[str, Any], action: str) -> None:
+        for dst, entry in tf["entries"].items():
+            self.directive_seq += 1
+            self.directives[self.directive_seq] = {"index": tf["index"], "action": action}
+            a = self.agents[int(dst)]
+            self.send(a, "directive", directive=self.directive_seq, action=action,
+                      fault={**entry, "index": tf["index"]})
+        if action == "add":
+            self.active_faults[tf["index"]] = {"kind": tf["kind"]}
+        else:
+            self.active_faults.pop(tf["index"], None)
+        self.event("fault-sent", fault=tf["index"], kind=tf["kind"], action=action,
+                   links=[list(link) for link in tf["links"]])
+
+    def crash(self, i: int, pf: dict[str, Any]) -> None:
+        a = self.agents[i]
+        if a.pid is None or a.dead:
+            return
+        a.crashed_on_purpose = True
+        a.restart_state = pf["params"].get("restart_state", "initial")
+        pid = a.pid
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(pid, signal.SIGKILL)
+        a.record.alive = False
+        self.event("crash", fault=pf["index"], agent=i, epoch=a.epoch, pid=pid, signal="SIGKILL")
+        after = pf["params"].get("restart_after_s")
+        if after is not None:
+            a.restart_pending = True
+            self.schedule(self.now_s() + float(after), "restart", lambda a=a, pf=pf: self.restart(a, pf))
+
+    def restart(self, a: _Agent, pf: dict[str, Any]) -> None:
+        if self.fork is None or self.stop_requested:
+            return
+        self.event("restart", fault=pf["index"], agent=a.id, previous_epoch=a.epoch)
+        a.endpoint = None
+        self.spawn(a)
+
+    def pause(self, i: int, pf: dict[str, Any], stop: bool) -> None:
+        a = self.agents[i]
+        if a.pid is None or a.dead:
+            return
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(a.pid, signal.SIGSTOP if stop else signal.SIGCONT)
+        self.event("pause" if stop else "resume", fault=pf["index"], agent=i, pid=a.pid,
+                   signal="SIGSTOP" if stop else "SIGCONT")
+
+    def slow(self, i: int, pf: dict[str, Any], factor: float) -> None:
+        a = self.agents[i]
+        self.send(a, "process", action="slow", factor=factor)
+        self.event("slow", fault=pf["index"], agent=i, factor=factor)
+
+    # -- run phase ---------------------------------------------------------------------
+    def check_stop_request(self, before_go: bool = False) -> None:
+        if self.stop_requested:
+            raise _Stop(self.stop_requested, 130)
+
+    def run_phase(self) -> None:
+        self.build_timeline()
+        lead = 0.05 + 0.001 * self.n
+        self.t_go = self.clock() + lead
+        for a in self.agents:
+            self.go(a)
+        self.event("go", agents=self.n, lead_s=lead)
+        next_beat = self.clock()
+        budget_end = None if self.s.seconds is None else float(self.s.seconds)
+        while True:
+            self.pump(10)
+            now = self.clock()
+            if now >= next_beat:
+                for a in self.agents:
+                    if not a.dead:
+                        self.send(a, "beat")
+                next_beat = now + HEARTBEAT_S
+            t = self.now_s()
+            while self.timeline and self.timeline[0][0] <= t:
+                _, _, _what, action = self.timeline.pop(0)
+                action()
+            if self.view is not None:
+                self.view(self)
+            if self.stop_requested:
+                raise _Stop(self.stop_requested, 130)
+            if self.unexpected:
+                raise _Stop(self.unexpected[0], 3)
+            if self.first_diverged is not None:
+                self.verdict = "diverged"
+                raise _Stop(self.first_diverged, 0)
+            if self.failures:
+                raise _Stop("agent failure: " + self.failures[0], 3)
+            done = all(
+                a.finished or (a.dead and a.crashed_on_purpose and not a.restart_pending)
+                for a in self.agents
+            )
+            if done and not any(a.restart_pending for a in self.agents):
+                raise _Stop("budget", 0)
+            if budget_end is not None and t > budget_end + 5.0 + self.opt.heartbeat_timeout:
+                late = [a.id for a in self.agents if not a.finished and not a.dead]
+                raise _Stop(f"agents {late} sent no final report after the time budget", 3)
+
+    def stop_all(self, reason: str) -> None:
+        """Ask every live agent to stop, collect final reports for a short while."""
+        self.stop_requested = self.stop_requested or reason
+        for a in self.agents:
+            if not a.dead:
+                self.send(a, "stop", reason=reason)
+        deadline = self.clock() + 1.5
+        while self.clock() < deadline:
+            self.pump(10)
+            if all(a.finished or a.dead for a in self.agents):
+                break
+        # let processes exit on their own, briefly, before the group is killed
+        deadline = self.clock() + 1.0
+        while self.clock() < deadline and self.fork is not None and self.fork.alive:
+            self.pump(10)
+
+    # -- results -----------------------------------------------------------------------
+    def results(self) -> RunResult:
+        sw = self.swarm
+        s = self.s
+        records = [r for a in self.agents for r in a.records]
+        metrics = metric_series(records, self.n, sw.objectives, sw.intended, sw.reference,
+                                by_iteration=s.mode == "rounds" and
+                                sw.telemetry["every_iterations"] > 0)
+        self.dir.write_csv("metrics.csv", METRIC_COLUMNS, metrics)
+        links, totals = link_accounting(records, sw.topology.edges())
+        self.dir.write_csv("links.csv", LINK_COLUMNS, links)
+        finals = []
+        for a in self.agents:
+            r = a.records[-1] if a.records else None
+            if r is not None and r.final is not None:
+                finals.append(np.asarray(r.final["state"]["x"], dtype=float))
+            elif r is not None and r.samples:
+                finals.append(np.asarray(r.samples[-1][2], dtype=float))
+        ref = sw.reference
+        scale = max(abs(ref.F_star), 1.0)
+        threshold = s.tolerance * scale
+        if finals:
+            X = np.asarray(finals)
+            x_hat = X.mean(axis=0)
+            final_gap = total_objective(sw.objectives, sw.intended, x_hat) - ref.F_star
+            cons = float(np.max(np.linalg.norm(X - x_hat, axis=1)))
+        else:
+            x_hat, final_gap, cons = None, None, None
+        tt = time_to_tolerance(metrics, threshold)
+        if final_gap is not None and final_gap <= threshold and tt is None:
+            tt = self.final_time()
+        run_s = None
+        iters = 0  # agent iterations done in the run phase, over every incarnation
+        for r in records:
+            if not r.samples and r.final is None:
+                continue
+            last = int(r.final["iteration"]) if r.final is not None else int(r.samples[-1][0])
+            first = int(r.samples[0][0]) if r.samples else last
+            iters += last - first
+        if self.t_go is not None:
+            run_s = (self.t_end or self.clock()) - self.t_go
+        if self.verdict is None:
+            if self.exit_code == 130:
+                self.verdict = "interrupted"
+            elif self.exit_code != 0:
+                self.verdict = "failed"
+            elif final_gap is not None and final_gap <= threshold:
+                self.verdict = "reached tolerance"
+            else:
+                self.verdict = "tolerance not reached"
+        summary = {
+            "scenario": s.name,
+            "agents": self.n,
+            "algorithm": sw.algorithm["name"],
+            "mode": s.mode,
+            "seed": s.seed,
+            "label": self.opt.label,
+            "wall_s": self.clock() - self.t_launch,
+            "startup_s": None if self.t_go is None else self.t_go - self.t_launch,
+            "run_s": run_s,
+            "iterations_per_s": None if not run_s else iters / run_s,
+            "iterations_total": iters,
+            "x_star": ref.x_star.tolist(),
+            "F_star": ref.F_star,
+            "reference_method": ref.method,
+            "reference_tolerance": ref.tolerance,
+            "x_hat": None if x_hat is None else x_hat.tolist(),
+            "final_gap": final_gap,
+            "final_consensus_error": cons,
+            "tolerance": s.tolerance,
+            "tolerance_threshold": threshold,
+            "time_to_tolerance_s": tt,
+            "messages": totals.as_dict(),
+            "verdict": self.verdict,
+            "exit": self.exit_reason,
+            "run_dir": str(self.dir.path),
+        }
+        summary.update(self.extra_summary(records, x_hat))
+        self.dir.write_json("summary.json", summary)
+        return RunResult(summary=summary, metrics=metrics, links=links, run_dir=self.dir.path,
+                         exit_code=self.exit_code)
+
+    def final_time(self) -> float | None:
+        times = [r.samples[-1][1] for a in self.agents for r in a.records if r.samples]
+        return max(times) if times else None
+
+    def extra_summary(self, records: list[AgentRecord], x_hat: Any) -> dict[str, Any]:
+        """Algorithm-specific diagnostics (priorities); empty when not applicable."""
+        sw = self.swarm
+        if sw.initial_priorities is None or x_hat is None:
+            return {}
+        try:
+            from coordinator._priority_diagnostics import priority_report
+        except ImportError:
+            return {}
+        finals_w, rows = [], {}
+        for a in self.agents:
+            r = a.records[-1] if a.records else None
+            if r is None or r.final is None:
+                continue
+            st = r.final["state"]
+            if "priorities" in st:
+                finals_w.append(st["priorities"])
+            if "mixing_row" in st:
+                rows[a.id] = {int(k): float(v) for k, v in st["mixing_row"].items()}
+        if len(finals_w) != self.n:
+            return {}
+        return priority_report(sw.initial_priorities, np.asarray(finals_w), rows or None,
+                               sw.objectives, np.asarray(x_hat))
+
+    # -- the whole run -----------------------------------------------------------------
+    def execute(self) -> RunResult:
+        self.dir.write_text("scenario.toml", self.s.to_toml())
+        self.dir.write_json("agents.json", self.swarm.agents_json())
+        handlers = self._install_signals()
+        try:
+            try:
+                self.launch()
+                self.handshake()
+                self.write_run_json(exit="running", handshake_s=self.clock() - self.t_launch)
+                self.run_phase()
+            except _Stop as st:
+                self.exit_reason, self.exit_code = st.reason, st.code
+            except KeyboardInterrupt:
+                self.exit_reason, self.exit_code = "interrupted (SIGINT)", 130
+            except Exception as exc:
+                self.exit_reason = f"coordinator error: {type(exc).__name__}: {exc}"
+                self.exit_code = 2
+                self.event("coordinator-error", error=self.exit_reason)
+            self.t_end = self.clock()
+            with contextlib.suppress(Exception):
+                self.stop_all(self.exit_reason)
+        finally:
+            self.cleanup()
+            self._restore_signals(handlers)
+        self.event("stop", reason=self.exit_reason)
+        result = self.results()
+        self.write_run_json(exit=self.exit_reason, exit_code=self.exit_code,
+                            stopped_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                            verdict=result.summary["verdict"])
+        self.dir.close()
+        return result
+
+    def cleanup(self) -> None:
+        if self.fork is not None:
+            self.fork.shutdown()
+        if self.router is not None:
+            self.router.close(linger=0)
+        if self.ctx is not None:
+            self.ctx.term()
+
+    def _install_signals(self) -> dict[int, Any]:
+        if threading.current_thread() is not threading.main_thread():
+            return {}
+        old = {}
+
+        def handler(signum: int, frame: Any) -> None:
+            name = signal.Signals(signum).name
+            if self.stop_requested:  # a second one: stop waiting
+                raise KeyboardInterrupt
+            self.stop_requested = f"interrupted ({name})"
+
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            old[sig] = signal.signal(sig, handler)
+        return old
+
+    def _restore_signals(self, old: dict[int, Any]) -> None:
+        for sig, h in old.items():
+            signal.signal(sig, h)
+
+
+def execute(swarm: Swarm, options: RunOptions | None = None) -> RunResult:
+    """Run one swarm to the end; the run directory is complete when this returns."""
+    return Coordinator(swarm, options or RunOptions()).execute()
+

@@ -1,0 +1,113 @@
+"""The run directory: names and keys fixed by the design so scripts can rely on them."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import msgpack
+
+__all__ = ["LINK_COLUMNS", "METRIC_COLUMNS", "RunDir", "read_telemetry"]
+
+LINK_COLUMNS = (
+    "from",
+    "to",
+    "sent",
+    "delivered",
+    "dropped_injected",
+    "lost_transport",
+    "duplicated",
+    "rejected",
+    "in_flight",
+    "delay_median_ms",
+    "delay_p95_ms",
+    "delay_max_ms",
+)
+METRIC_COLUMNS = (
+    "t_s",
+    "gap",
+    "consensus_error",
+    "priority_disagreement",
+    "priority_drift",
+    "iteration_min",
+    "iteration_median",
+    "iteration_max",
+)
+
+
+def _clean(obj: Any) -> Any:
+    """JSON cannot hold NaN or infinity: write them as null."""
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_clean(v) for v in obj]
+    if hasattr(obj, "tolist"):
+        return _clean(obj.tolist())
+    return obj
+
+
+class RunDir:
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        path.mkdir(parents=True, exist_ok=True)
+        (path / "telemetry").mkdir(exist_ok=True)
+        (path / "events.jsonl").touch()
+        self._tel: dict[int, Any] = {}
+        self._events = (path / "events.jsonl").open("a", buffering=1)
+
+    @staticmethod
+    def default_path(name: str, root: Path = Path("runs")) -> Path:
+        stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S.%fZ")
+        return root / f"{name}-{stamp}"
+
+    def write_text(self, name: str, text: str) -> None:
+        tmp = self.path / (name + ".tmp")
+        tmp.write_text(text)
+        tmp.replace(self.path / name)
+
+    def write_json(self, name: str, obj: Any) -> None:
+        self.write_text(name, json.dumps(_clean(obj), indent=2) + "\n")
+
+    def event(self, obj: dict[str, Any]) -> None:
+        self._events.write(json.dumps(_clean(obj)) + "\n")
+
+    def telemetry(self, agent: int, batch: dict[str, Any]) -> None:
+        f = self._tel.get(agent)
+        if f is None:
+            f = self._tel[agent] = (self.path / "telemetry" / f"agent-{agent}.msgpack").open("ab")
+        f.write(msgpack.packb(batch))
+        f.flush()
+
+    def write_csv(self, name: str, columns: tuple[str, ...], rows: list[dict[str, Any]]) -> None:
+        tmp = self.path / (name + ".tmp")
+        with tmp.open("w", newline="") as f:
+            w = csv.DictWriter(f, fieldnames=list(columns))
+            w.writeheader()
+            for r in rows:
+                w.writerow({k: ("" if r.get(k) is None else r.get(k)) for k in columns})
+        tmp.replace(self.path / name)
+
+    def close(self) -> None:
+        for f in self._tel.values():
+            f.close()
+        self._tel.clear()
+        self._events.close()
+
+
+def read_telemetry(path: Path) -> list[dict[str, Any]]:
+    """Every batch of one telemetry file, in arrival order (a torn last batch is skipped)."""
+    out = []
+    with path.open("rb") as f:
+        unpacker = msgpack.Unpacker(f, strict_map_key=False)
+        try:
+            for obj in unpacker:
+                out.append(obj)
+        except (ValueError, msgpack.OutOfData):
+            pass
+    return out

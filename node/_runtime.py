@@ -1,0 +1,853 @@
+"""The agent process: sockets, the loop, the control channel, telemetry batching, signals.
+
+This layer is thin on purpose: the algorithm is a pure core (:mod:`node._algorithm`), the
+fault decisions are pure (:mod:`node._links`), the codec owns msgpack (:mod:`node._wire`)
+and the life cycle is one state machine (:mod:`node._lifecycle`). What is left here is
+obeying them on real sockets and real time.
+
+Sockets: one DEALER to the coordinator's ROUTER (control, telemetry), one PUB bound for the
+agent's outgoing data (every algorithm broadcasts one payload per step), one SUB connected to
+every in-neighbour's PUB. PUB never blocks the loop on a slow neighbour; whatever does not
+arrive shows up as a gap in the per-link sequence numbers and is counted as lost in transport.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import ctypes
+import os
+import signal
+import socket
+import sys
+import time
+import traceback
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import zmq
+
+from node._algorithm import AgentSpec, Algorithm, Received, StepRule, algorithm_class
+from node._errors import AgentFailure, ProtocolError, WireError
+from node._lifecycle import Lifecycle, Phase
+from node._links import DELIVER, LinkFault, LinkModel, corrupt_bytes
+from node._objectives import objective_from_spec
+from node._rng import agent_generator, stream_key
+from node._wire import (
+    DATA,
+    PROBE,
+    decode_control,
+    decode_data,
+    encode_control,
+    encode_data,
+    encode_probe,
+    payload_arrays,
+)
+
+__all__ = ["InLinkCounters", "Node", "main", "spec_from_plan"]
+
+VERSION = "0.1.0"
+#: an estimate beyond this (or not finite) means the run diverged
+DIVERGED = 1e12
+
+
+@dataclass(slots=True)
+class InLinkCounters:
+    """What one agent saw on one in-link from one sender epoch (receiver side)."""
+
+    #: frames that decoded and came from this sender epoch (probes excluded)
+    received: int = 0
+    #: messages the algorithm was allowed to see (duplicates not included)
+    delivered: int = 0
+    #: dropped by an injected fault (loss, burst loss, outage)
+    dropped_injected: int = 0
+    #: refused: corrupted (checksum), malformed, replayed, or from an old epoch
+    rejected: int = 0
+    #: extra copies made by an injected duplicate fault
+    duplicated: int = 0
+    #: sequence numbers never seen below the highest one seen (transport loss)
+    lost_transport: int = 0
+    #: highest sequence number seen, -1 if none
+    max_seq: int = -1
+    #: accepted but still held by a delay fault (becomes in-flight at stop)
+    held: int = 0
+    #: first sequence number seen from this epoch (a restarted receiver starts late)
+    first_seq: int = 0
+    delays: list[float] = field(default_factory=list)
+
+    def as_list(self) -> list[Any]:
+        return [
+            self.received,
+            self.delivered,
+            self.dropped_injected,
+            self.rejected,
+            self.duplicated,
+            self.lost_transport,
+            self.max_seq,
+            self.held,
+            self.first_seq,
+        ]
+
+
+COUNTER_FIELDS = (
+    "received",
+    "delivered",
+    "dropped_injected",
+    "rejected",
+    "duplicated",
+    "lost_transport",
+    "max_seq",
+    "held",
+    "first_seq",
+)
+
+
+class _InLink:
+    __slots__ = (
+        "arrays",
+        "counters",
+        "epoch",
+        "fresh",
+        "heard",
+        "key",
+        "last_iter",
+        "last_release",
+        "latest",
+        "model",
+        "pending",
+        "src",
+        "stale",
+    )
+
+    def __init__(self, src: int, model: LinkModel, key: int) -> None:
+        self.src = src
+        self.model = model
+        self.key = key
+        self.epoch = -1  # unknown until the peer table says
+        self.counters: dict[int, InLinkCounters] = {}
+        self.heard = False
+        self.latest: Any = None  # (iteration, raw payload) of the newest visible message
+        self.arrays: dict[str, np.ndarray] | None = None
+        self.fresh = False
+        #: held messages: (release key, seq, iteration, raw payload, send_time)
+        self.pending: list[tuple[float, int, int, dict, float, bool, InLinkCounters]] = []
+        #: highest iteration of any message seen from the current epoch (dropped ones too)
+        self.last_iter = -1
+        self.last_release = 0.0
+        #: rounds mode: gave up waiting for this neighbour; not awaited until it speaks
+        self.stale = False
+
+    def cur(self) -> InLinkCounters:
+        c = self.counters.get(self.epoch)
+        if c is None:
+            c = self.counters[self.epoch] = InLinkCounters()
+        return c
+
+
+def spec_from_plan(plan: Mapping[str, Any]) -> AgentSpec:
+    """Build the pure AgentSpec from a plan received over the control channel."""
+    obj = dict(plan["objective"])
+    obj.setdefault("agent", plan["agent"])
+    prios = plan.get("initial_priorities")
+    return AgentSpec(
+        id=int(plan["agent"]),
+        n_agents=int(plan["n_agents"]),
+        dimension=int(plan["dimension"]),
+        in_neighbours=tuple(int(j) for j in plan["in_neighbours"]),
+        out_neighbours=tuple(int(j) for j in plan["out_neighbours"]),
+        weights={int(k): float(v) for k, v in plan["weights"].items()},
+        objective=objective_from_spec(obj),
+        initial_state=np.asarray(plan["initial_state"], dtype=float),
+        initial_priorities=None if prios is None else np.asarray(prios, dtype=float),
+        step=StepRule.from_spec(plan["algorithm"]["step"]),
+        in_neighbour_out_degree={
+            int(k): int(v) for k, v in plan.get("in_neighbour_out_degree", {}).items()
+        },
+        params=dict(plan["algorithm"].get("params", {})),
+    )
+
+
+def _import_modules(names: list[str]) -> None:
+    import importlib
+
+    for name in names:
+        importlib.import_module(name)
+
+
+def _set_parent_death_signal() -> None:
+    """Linux: die with the parent (the fork server, which dies with the coordinator)."""
+    if not sys.platform.startswith("linux"):
+        return
+    with contextlib.suppress(Exception):
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+
+
+def _advertise_host(bind_host: str, coordinator: str) -> str:
+    if bind_host not in ("0.0.0.0", "*"):
+        return bind_host
+    # The address of the interface that routes to the coordinator.
+    host = coordinator.split("://", 1)[-1].rsplit(":", 1)[0]
+    with contextlib.suppress(OSError), socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+        s.connect((host, 9))
+        return s.getsockname()[0]
+    return socket.gethostname()
+
+
+class Node:
+    """One agent process. ``run()`` returns the process exit code."""
+
+    def __init__(
+        self,
+        join: str,
+        agent: int,
+        *,
+        heartbeat_timeout: float = 3.0,
+        clock: Any = time.monotonic,
+    ) -> None:
+        self.join = join
+        self.agent = agent
+        self.clock = clock
+        self.heartbeat_timeout = heartbeat_timeout
+        self.life = Lifecycle()
+        self.ctx = zmq.Context()
+        self.ctl = self.ctx.socket(zmq.DEALER)
+        self.ctl.setsockopt(zmq.LINGER, 0)
+        self.ctl.setsockopt(zmq.SNDHWM, 100000)
+        self.ctl.connect(join)
+        self.pub: zmq.Socket | None = None
+        self.sub: zmq.Socket | None = None
+        self.last_ctl = clock()
+        self.epoch = 0
+        self.inlinks: dict[int, _InLink] = {}
+        self.unattributed_rejected = 0
+        self.refused_control = 0
+        self.telemetry_dropped = 0
+        self.sent = 0
+        self.seq = 0
+        self.iteration = 0
+        self.samples: list[list[Any]] = []
+        self.stop_reason: str | None = None
+        self.slow_factor = 1.0
+        self.start_node = 0.0
+        self.directives_pending: list[dict[str, Any]] = []
+
+    # -- control channel ---------------------------------------------------------------
+    def send_ctl(self, kind: str, **fields: Any) -> bool:
+        try:
+            self.ctl.send(encode_control(kind, **fields), zmq.NOBLOCK)
+            return True
+        except zmq.Again:
+            return False
+
+    def handle_ctl(self, frame: bytes) -> dict[str, Any] | None:
+        """Decode, check against the life cycle, apply the 'stay' messages; return the rest."""
+        try:
+            msg = decode_control(frame)
+            self.life.on_message(msg["t"])
+        except (WireError, ProtocolError):
+            self.refused_control += 1
+            return None
+        self.last_ctl = self.clock()
+        kind = msg["t"]
+        if kind == "ping":
+            self.send_ctl("pong", seq=msg["seq"], t_coord=msg["t_coord"], t_node=self.clock())
+            return None
+        if kind == "beat":
+            return None
+        if kind == "directive":
+            self.apply_directive(msg)
+            return None
+        if kind == "process":
+            if msg["action"] == "slow":
+                self.slow_factor = float(msg["factor"])
+            return None
+        if kind == "stop":
+            self.stop_reason = msg["reason"]
+        return msg
+
+    def wait_ctl(self, *kinds: str) -> dict[str, Any]:
+        """Block for one of ``kinds`` (answering pings meanwhile); fail on coordinator loss."""
+        while True:
+            if self.ctl.poll(100):
+                msg = self.handle_ctl(self.ctl.recv())
+                if msg is None:
+                    continue
+                if msg["t"] in kinds:
+                    return msg
+                if msg["t"] in ("stop", "refuse"):
+                    raise AgentFailure(f"agent {self.agent}: coordinator said {msg['t']}: "
+                                       f"{msg.get('reason', '')}")
+            elif self.clock() - self.last_ctl > self.heartbeat_timeout:
+                raise AgentFailure(f"agent {self.agent}: coordinator silent for "
+                                   f"{self.heartbeat_timeout:.1f} s")
+
+    def coordinator_lost(self) -> bool:
+        return self.clock() - self.last_ctl > self.heartbeat_timeout
+
+    # -- set-up ------------------------------------------------------------------------
+    def setup(self, plan: Mapping[str, Any]) -> None:
+        _import_modules(list(plan.get("modules", [])))
+        self.plan = plan
+        self.epoch = int(plan["epoch"])
+        self.spec = spec_from_plan(plan)
+        self.algorithm: Algorithm = algorithm_class(plan["algorithm"]["name"])(self.spec)
+        self.sizes = dict(self.algorithm.payload_sizes())
+        self.mode = plan["mode"]
+        self.iterations = plan.get("iterations")
+        self.seconds = plan.get("seconds")
+        t = plan["timing"]
+        self.period = float(t["period_ms"]) / 1000.0
+        self.jitter = float(t["jitter"])
+        self.speed = float(t.get("speed", 1.0))
+        self.round_timeout = float(t["round_timeout_ms"]) / 1000.0
+        tel = plan["telemetry"]
+        self.every_iterations = int(tel["every_iterations"])
+        self.every_s = float(tel["every_ms"]) / 1000.0
+        self.batch_s = float(tel.get("batch_ms", 50.0)) / 1000.0
+        self.keep_delays = bool(tel.get("delay_samples", False))
+        self.rng = agent_generator(int(plan["seed"]), self.agent, purpose=1)
+        seed = int(plan["seed"])
+        for j in self.spec.in_neighbours:
+            self.inlinks[j] = _InLink(j, LinkModel(seed, j, self.agent), stream_key(seed, j, self.agent, 7))
+        for entry in plan.get("faults", []):
+            self.add_fault(entry)
+        self.pub = self.ctx.socket(zmq.PUB)
+        self.pub.setsockopt(zmq.LINGER, 0)
+        self.pub.setsockopt(zmq.SNDHWM, int(plan.get("hwm", 100000)))
+        bind_host = plan.get("bind_host", "127.0.0.1")
+        port = self.pub.bind_to_random_port(f"tcp://{bind_host}")
+        self.endpoint = f"tcp://{_advertise_host(bind_host, self.join)}:{port}"
+        self.sub = self.ctx.socket(zmq.SUB)
+        self.sub.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.RCVHWM, int(plan.get("hwm", 100000)))
+        self.sub.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+        self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        self.connected: dict[int, str] = {}
+
+    def add_fault(self, entry: Mapping[str, Any]) -> None:
+        fault = LinkFault.from_wire(entry["fault"])
+        for src in entry["from"]:
+            link = self.inlinks.get(int(src))
+            if link is not None:
+                link.model.add(fault)
+
+    def apply_directive(self, msg: Mapping[str, Any]) -> None:
+        entry = msg["fault"]
+        if msg["action"] == "add":
+            self.add_fault(entry)
+        else:
+            idx = int(entry["index"])
+            for src in entry["from"]:
+                link = self.inlinks.get(int(src))
+                if link is not None:
+                    link.model.remove(idx)
+        self.send_ctl("ack", directive=msg["directive"], t_node=self.clock())
+
+    def apply_peers(self, peers: Mapping[Any, Any]) -> None:
+        assert self.sub is not None
+        for key, entry in peers.items():
+            j = int(key)
+            link = self.inlinks.get(j)
+            if link is None:
+                continue
+            endpoint, epoch = str(entry[0]), int(entry[1])
+            if epoch > link.epoch:
+                link.epoch = epoch
+            old = self.connected.get(j)
+            if old != endpoint:
+                if old is not None:
+                    with contextlib.suppress(zmq.ZMQError):
+                        self.sub.disconnect(old)
+                self.sub.connect(endpoint)
+                self.connected[j] = endpoint
+
+    # -- data plane --------------------------------------------------------------------
+    def publish(self, payload: Mapping[str, np.ndarray], iteration: int) -> None:
+        assert self.pub is not None
+        frame = encode_data(self.agent, self.epoch, self.seq, iteration, self.clock(), payload)
+        self.seq += 1
+        self.sent += 1
+        try:
+            self.pub.send(frame, zmq.NOBLOCK)
+        except zmq.Again:  # PUB does not raise at its mark, but be safe: counted by the gap
+            pass
+
+    def on_frame(self, frame: bytes, now: float) -> None:
+        """One data frame: validate, account, pass through the link model."""
+        try:
+            m = decode_data(frame, self.sizes)
+        except WireError:
+            self.unattributed_rejected += 1
+            return
+        link = self.inlinks.get(m.sender)
+        if link is None:
+            self.unattributed_rejected += 1
+            return
+        if m.kind == PROBE:
+            if m.epoch >= link.epoch:
+                link.heard = True
+            return
+        if m.epoch > link.epoch:  # a newer incarnation than the peer table said
+            link.epoch = m.epoch
+            link.last_iter = -1
+        c = link.counters.get(m.epoch)
+        if c is None:
+            c = link.counters[m.epoch] = InLinkCounters(first_seq=m.seq)
+        c.received += 1
+        if m.seq <= c.max_seq:  # replayed or reordered by the transport: refuse
+            c.rejected += 1
+            return
+        c.lost_transport += m.seq - c.max_seq - 1
+        c.max_seq = m.seq
+        if m.epoch < link.epoch:  # queued by an incarnation that is gone: refuse
+            c.rejected += 1
+            return
+        link.heard = True
+        link.stale = False
+        if m.iteration > link.last_iter:
+            link.last_iter = m.iteration
+        d = link.model.decide(m.seq, m.iteration, now - self.start_node)
+        if d is DELIVER:
+            self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, 0.0, False)
+            return
+        if not d.deliver:
+            c.dropped_injected += 1
+            return
+        if d.corrupt:
+            try:
+                decode_data(corrupt_bytes(frame, link.key, m.seq), self.sizes)
+            except WireError:
+                c.rejected += 1
+                return
+            # The checksum makes this unreachable; refuse anyway rather than trust it.
+            c.rejected += 1
+            return
+        self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, d.delay_s, d.fifo)
+        if d.copies > 1:
+            c.duplicated += d.copies - 1
+            for _ in range(d.copies - 1):
+                self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, d.delay_s,
+                            d.fifo, duplicate=True)
+
+    def accept(
+        self,
+        link: _InLink,
+        c: InLinkCounters,
+        seq: int,
+        iteration: int,
+        raw: dict,
+        send_time: float,
+        now: float,
+        delay_s: float,
+        fifo: bool,
+        duplicate: bool = False,
+    ) -> None:
+        if self.mode == "rounds":
+            # Delays count in rounds: a delay shorter than one round period arrives in time.
+            lag = int(delay_s / self.period) if delay_s > 0.0 else 0
+            key = float(iteration + lag)
+        else:
+            key = now + delay_s
+        if fifo and key < link.last_release:
+            key = link.last_release
+        link.last_release = max(link.last_release, key)
+        if self.mode == "async" and delay_s == 0.0 and not link.pending:
+            self.make_visible(link, c, iteration, raw, send_time, now, duplicate)
+            return
+        link.pending.append((key, seq, iteration, raw, send_time, duplicate, c))
+        if not duplicate:
+            c.held += 1
+
+    def make_visible(
+        self, link: _InLink, c: InLinkCounters, iteration: int, raw: dict, send_time: float,
+        now: float, duplicate: bool,
+    ) -> None:
+        link.latest = (iteration, raw)
+        link.arrays = None
+        link.fresh = True
+        if not duplicate:
+            c.delivered += 1
+            c.delays.append(now - send_time)
+
+    def release(self, bound: float, now: float) -> None:
+        """Make visible every held message whose release key is <= bound."""
+        for link in self.inlinks.values():
+            if not link.pending:
+                continue
+            ready = [p for p in link.pending if p[0] <= bound]
+            if not ready:
+                continue
+            link.pending = [p for p in link.pending if p[0] > bound]
+            ready.sort(key=lambda p: (p[0], p[1]))
+            for _key, _seq, iteration, raw, send_time, dup, c in ready:
+                if not dup:
+                    c.held -= 1
+                self.make_visible(link, c, iteration, raw, send_time, now, dup)
+
+    def drain(self, now: float) -> int:
+        assert self.sub is not None
+        n = 0
+        sub = self.sub
+        while True:
+            try:
+                frame = sub.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return n
+            self.on_frame(frame, now)
+            n += 1
+
+    def inbox(self) -> dict[int, Received]:
+        box = {}
+        for j, link in self.inlinks.items():
+            if link.latest is None:
+                continue
+            if link.arrays is None:
+                link.arrays = payload_arrays(link.latest[1])
+            box[j] = Received(link.latest[0], link.arrays, link.fresh)
+            link.fresh = False
+        return box
+
+    # -- telemetry ---------------------------------------------------------------------
+    def link_report(self, with_delays: bool = False) -> dict[int, Any]:
+        out: dict[int, Any] = {}
+        for j, link in self.inlinks.items():
+            per = {}
+            for ep, c in link.counters.items():
+                row: list[Any] = c.as_list()
+                if c.delays:
+                    d = np.asarray(c.delays) * 1000.0
+                    row += [float(np.median(d)), float(np.percentile(d, 95)), float(d.max())]
+                else:
+                    row += [None, None, None]
+                if with_delays and self.keep_delays:
+                    row.append(c.delays)
+                per[ep] = row
+            out[j] = per
+        return out
+
+    def counters(self) -> dict[str, Any]:
+        return {
+            "sent": self.sent,
+            "epoch": self.epoch,
+            "unattributed_rejected": self.unattributed_rejected,
+            "refused_control": self.refused_control,
+            "telemetry_dropped": self.telemetry_dropped,
+            "age": self.neighbour_age(),
+        }
+
+    def neighbour_age(self) -> float:
+        """Mean age, in iterations, of the neighbour information used at the last step."""
+        ages = [self.iteration - link.latest[0] for link in self.inlinks.values() if link.latest]
+        return float(np.mean(ages)) if ages else 0.0
+
+    def sample(self, state: Any, now: float) -> None:
+        pr = getattr(state, "priorities", None)
+        row = getattr(state, "mixing_row", None)
+        self.samples.append(
+            [
+                self.iteration,
+                now,
+                state.x.tolist(),
+                None if pr is None else pr.tolist(),
+                self.algorithm.local_value(state.x),
+                None if row is None else {int(k): float(v) for k, v in row.items()},
+            ]
+        )
+
+    def flush(self) -> None:
+        if not self.samples:
+            return
+        ok = self.send_ctl("tel", samples=self.samples, links=self.link_report(),
+                           counters=self.counters())
+        if ok:
+            self.samples = []
+        else:
+            self.telemetry_dropped += 1
+
+    # -- main phases -------------------------------------------------------------------
+    def handshake(self) -> None:
+        self.send_ctl("hello", agent=self.agent, host=socket.gethostname(), pid=os.getpid(),
+                      version=VERSION)
+        plan = self.wait_ctl("plan")["plan"]
+        self.setup(plan)
+        self.send_ctl("bound", endpoint=self.endpoint)
+        peers = self.wait_ctl("peers")
+        self.apply_peers(peers["peers"])
+        # Probe until every in-neighbour has been heard (slow joiners), then report ready
+        # and keep probing until go, so that our out-neighbours can hear us too.
+        assert self.pub is not None and self.sub is not None
+        poller = zmq.Poller()
+        poller.register(self.ctl, zmq.POLLIN)
+        poller.register(self.sub, zmq.POLLIN)
+        ready_sent = False
+        next_probe = 0.0
+        while True:
+            now = self.clock()
+            if now >= next_probe:
+                with contextlib.suppress(zmq.Again):
+                    self.pub.send(encode_probe(self.agent, self.epoch, now), zmq.NOBLOCK)
+                next_probe = now + 0.003
+            events = dict(poller.poll(3))
+            if self.sub in events:
+                self.drain(now)
+            if not ready_sent and all(link.heard for link in self.inlinks.values()):
+                self.send_ctl("ready")
+                ready_sent = True
+            if self.ctl in events:
+                while self.ctl.poll(0):
+                    msg = self.handle_ctl(self.ctl.recv())
+                    if msg is None:
+                        continue
+                    if msg["t"] == "peers":
+                        self.apply_peers(msg["peers"])
+                    elif msg["t"] == "go":
+                        self.start_node = float(msg["start_node"])
+                        self.iteration = int(msg["iteration"])
+                        return
+                    elif msg["t"] == "stop":
+                        raise AgentFailure(f"agent {self.agent}: stopped before go")
+            if self.coordinator_lost():
+                raise AgentFailure(f"agent {self.agent}: coordinator silent for "
+                                   f"{self.heartbeat_timeout:.1f} s during handshake")
+
+    def initial(self) -> tuple[Any, dict]:
+        state, out = self.algorithm.init()
+        start_state = self.plan.get("start_state")
+        if start_state is not None:  # a restart that keeps its last reported state
+            state, out = self.algorithm.resume(state, np.asarray(start_state, dtype=float)) \
+                if hasattr(self.algorithm, "resume") else self._resume_x(state, start_state)
+        return state, out
+
+    def _resume_x(self, state: Any, x: Any) -> tuple[Any, dict]:
+        import dataclasses
+
+        new = dataclasses.replace(state, x=np.asarray(x, dtype=float))
+        _, out = self.algorithm.init()
+        out = dict(out)
+        if "x" in out:
+            out["x"] = new.x
+        return new, out
+
+    def control_tick(self) -> bool:
+        """Handle pending control messages; True when the run must end now."""
+        while self.ctl.poll(0):
+            msg = self.handle_ctl(self.ctl.recv())
+            if msg is None:
+                continue
+            if msg["t"] == "peers":
+                self.apply_peers(msg["peers"])
+            elif msg["t"] == "stop":
+                return True
+        return self.coordinator_lost()
+
+    def check_state(self, state: Any) -> None:
+        x = state.x
+        if not np.all(np.isfinite(x)) or float(np.max(np.abs(x))) > DIVERGED:
+            raise _Diverged(self.iteration)
+
+    def run_loop(self) -> tuple[Any, str]:
+        state, out = self.initial()
+        budget = self.iterations
+        # Wait for the common start time.
+        while self.clock() < self.start_node:
+            if self.control_tick():
+                return state, self.stop_reason or "coordinator lost"
+            time.sleep(min(0.001, max(0.0, self.start_node - self.clock())))
+        if self.mode == "rounds":
+            return self.rounds(state, out, budget)
+        return self.asynchronous(state, out, budget)
+
+    def _sample_due(self, now: float) -> bool:
+        if self.every_iterations > 0:
+            return self.iteration % self.every_iterations == 0
+        return now >= self._next_sample
+
+    def rounds(self, state: Any, out: dict, budget: int | None) -> tuple[Any, str]:
+        assert self.sub is not None
+        deadline = None if self.seconds is None else self.start_node + float(self.seconds)
+        self._next_sample = self.start_node
+        next_flush = self.clock() + self.batch_s
+        sub = self.sub
+        awaited = list(self.inlinks.values())
+        now = self.clock()
+        self.sample(state, now)
+        while True:
+            k = self.iteration
+            if budget is not None and k >= budget:
+                return state, "budget"
+            if deadline is not None and now >= deadline:
+                return state, "budget"
+            self.publish(out, k)
+            # Barrier: a message of iteration >= k from every awaited in-neighbour.
+            t0 = self.clock()
+            while True:
+                missing = False
+                for link in awaited:
+                    if link.stale:
+                        continue
+                    if link.last_iter < k:
+                        missing = True
+                        break
+                if not missing:
+                    break
+                now = self.clock()
+                if now - t0 > self.round_timeout:
+                    for link in awaited:
+                        if not link.stale and link.last_iter < k:
+                            link.stale = True
+                    break
+                if sub.poll(1):
+                    self.drain(self.clock())
+                if self.control_tick():
+                    return state, self.stop_reason or "coordinator lost"
+            now = self.clock()
+            self.release(float(k), now)
+            state, out = self.algorithm.step(state, self.inbox(), k)
+            self.iteration = k + 1
+            self.check_state(state)
+            if self._sample_due(now):
+                self.sample(state, now)
+                self._next_sample = now + self.every_s
+            if now >= next_flush:
+                self.flush()
+                next_flush = now + self.batch_s
+                if self.control_tick():
+                    return state, self.stop_reason or "coordinator lost"
+
+    def asynchronous(self, state: Any, out: dict, budget: int | None) -> tuple[Any, str]:
+        assert self.sub is not None
+        deadline = None if self.seconds is None else self.start_node + float(self.seconds)
+        self._next_sample = self.start_node
+        next_flush = self.clock() + self.batch_s
+        poller = zmq.Poller()
+        poller.register(self.sub, zmq.POLLIN)
+        poller.register(self.ctl, zmq.POLLIN)
+        next_step = self.start_node
+        now = self.clock()
+        self.sample(state, now)
+        self.publish(out, self.iteration)
+        while True:
+            if budget is not None and self.iteration >= budget:
+                return state, "budget"
+            now = self.clock()
+            if deadline is not None and now >= deadline:
+                return state, "budget"
+            wait = next_step - now
+            if wait > 0:
+                events = dict(poller.poll(max(0, int(wait * 1000))))
+                now = self.clock()
+                if self.sub in events:
+                    self.drain(now)
+                if self.ctl in events and self.control_tick():
+                    return state, self.stop_reason or "coordinator lost"
+                if now < next_step:
+                    continue
+            self.drain(now)
+            self.release(now, now)
+            k = self.iteration
+            state, out = self.algorithm.step(state, self.inbox(), k)
+            self.iteration = k + 1
+            self.check_state(state)
+            self.publish(out, self.iteration)
+            period = self.period * self.speed * self.slow_factor
+            if self.jitter > 0.0:
+                period *= 1.0 + self.jitter * (2.0 * self.rng.random() - 1.0)
+            next_step = max(next_step + period, now - 10 * period)
+            if self._sample_due(now):
+                self.sample(state, now)
+                self._next_sample = now + self.every_s
+            if now >= next_flush:
+                self.flush()
+                next_flush = now + self.batch_s
+                if self.control_tick():
+                    return state, self.stop_reason or "coordinator lost"
+
+    def finish(self, state: Any, reason: str) -> None:
+        now = self.clock()
+        self.sample(state, now)
+        final_state = {"x": state.x.tolist()}
+        pr = getattr(state, "priorities", None)
+        if pr is not None:
+            final_state["priorities"] = pr.tolist()
+        row = getattr(state, "mixing_row", None)
+        if row is not None:
+            final_state["mixing_row"] = {int(k): float(v) for k, v in row.items()}
+        self.flush()
+        self.send_ctl("final", state=final_state, iteration=self.iteration,
+                      links=self.link_report(with_delays=True), counters=self.counters(),
+                      reason=reason)
+
+    def run(self) -> int:
+        try:
+            self.handshake()
+            try:
+                state, reason = self.run_loop()
+            except _Diverged as d:
+                self.flush()
+                self.send_ctl("failed", error=f"diverged: agent {self.agent} state left"
+                              f" the bounded region at iteration {d.iteration}")
+                self._wait_stop(2.0)
+                return 4
+            if reason == "coordinator lost" or self.coordinator_lost():
+                return 3
+            self.finish(state, reason)
+            if self.life.phase is Phase.RUNNING:
+                self.life.finished()
+            self._wait_stop(self.heartbeat_timeout)
+            return 0
+        except AgentFailure as exc:
+            with contextlib.suppress(Exception):
+                self.send_ctl("failed", error=str(exc))
+            print(str(exc), file=sys.stderr)
+            return 3
+        except Exception as exc:
+            msg = f"agent {self.agent}: {type(exc).__name__}: {exc}"
+            with contextlib.suppress(Exception):
+                self.send_ctl("failed", error=msg)
+            traceback.print_exc()
+            return 2
+        finally:
+            self.close()
+
+    def _wait_stop(self, timeout: float) -> None:
+        end = self.clock() + timeout
+        while self.stop_reason is None and self.clock() < end and not self.coordinator_lost():
+            if self.ctl.poll(50):
+                with contextlib.suppress(Exception):
+                    self.handle_ctl(self.ctl.recv())
+            if self.sub is not None:
+                # Keep the socket drained so the sender never sees back-pressure; what
+                # arrives now is past the final report and counts as in flight.
+                with contextlib.suppress(zmq.ZMQError):
+                    while self.sub.poll(0):
+                        self.sub.recv(zmq.NOBLOCK)
+
+    def close(self) -> None:
+        for s in (self.pub, self.sub, self.ctl):
+            if s is not None:
+                s.close(linger=0)
+        self.ctx.term()
+
+
+class _Diverged(Exception):
+    def __init__(self, iteration: int) -> None:
+        self.iteration = iteration
+
+
+def main(join: str, agent: int, heartbeat_timeout: float = 3.0) -> int:
+    """Entry point of one agent process (``swarmrig node``)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the coordinator decides when to stop
+    stop = {"flag": False}
+
+    def _term(signum: int, frame: Any) -> None:
+        # Graceful: the loop notices through its control checks; a second TERM kills.
+        if stop["flag"]:
+            os._exit(143)
+        stop["flag"] = True
+        raise SystemExit(143)
+
+    signal.signal(signal.SIGTERM, _term)
+    node = Node(join, agent, heartbeat_timeout=heartbeat_timeout)
+    return node.run()

@@ -1,0 +1,216 @@
+"""The one codec: msgpack frames, their size bounds, and schema validation.
+
+Two kinds of frames travel:
+
+* data frames, agent to agent on the data plane (hot path). Layout: a msgpack array
+  ``[kind, sender, epoch, seq, iteration, send_time, payload]`` followed by a 4-byte
+  little-endian CRC-32 of the array, so that a corrupted frame is always refused.
+  ``payload`` maps names to raw little-endian float64 bytes.
+* control frames, between an agent and the coordinator: a msgpack map with a ``"t"`` type
+  key, validated against :data:`CONTROL_SCHEMA`.
+
+Decoding takes one ``unpackb`` call per frame, refuses ExtType, and then checks the decoded
+object against the schema, because random bytes sometimes decode to valid objects. Every
+refusal is a :class:`~node._errors.WireError` that says what was wrong.
+"""
+
+from __future__ import annotations
+
+import struct
+import zlib
+from collections.abc import Mapping
+from typing import Any, NamedTuple
+
+import msgpack
+import numpy as np
+
+from node._errors import WireError
+
+__all__ = [
+    "CONTROL_SCHEMA",
+    "DATA",
+    "MAX_CONTROL_FRAME",
+    "MAX_DATA_FRAME",
+    "PROBE",
+    "DataMessage",
+    "decode_control",
+    "decode_data",
+    "encode_control",
+    "encode_data",
+    "encode_probe",
+    "payload_arrays",
+]
+
+DATA = 0
+PROBE = 1
+#: a data frame carries a handful of small vectors; anything near this is an attack or a bug
+MAX_DATA_FRAME = 1 << 20
+#: control frames carry plans and telemetry batches
+MAX_CONTROL_FRAME = 64 << 20
+
+_F64 = np.dtype("<f8")
+_U32 = struct.Struct("<I")
+_crc32 = zlib.crc32
+_unpackb = msgpack.unpackb
+
+
+def _refuse_ext(code: int, data: bytes) -> Any:
+    raise WireError(f"msgpack extension type {code} is not allowed")
+
+
+class DataMessage(NamedTuple):
+    """One decoded data frame (a tuple: immutable and cheap to build on the hot path)."""
+
+    kind: int
+    sender: int
+    epoch: int
+    seq: int
+    iteration: int
+    send_time: float
+    #: name -> raw little-endian float64 bytes (see :func:`payload_arrays`)
+    payload: dict[str, bytes]
+
+
+def encode_data(
+    sender: int,
+    epoch: int,
+    seq: int,
+    iteration: int,
+    send_time: float,
+    payload: Mapping[str, np.ndarray],
+) -> bytes:
+    body = msgpack.packb(
+        [
+            DATA,
+            sender,
+            epoch,
+            seq,
+            iteration,
+            send_time,
+            {k: np.ascontiguousarray(v, dtype=_F64).tobytes() for k, v in payload.items()},
+        ]
+    )
+    return body + zlib.crc32(body).to_bytes(4, "little")
+
+
+def encode_probe(sender: int, epoch: int, send_time: float) -> bytes:
+    body = msgpack.packb([PROBE, sender, epoch, -1, -1, send_time, {}])
+    return body + zlib.crc32(body).to_bytes(4, "little")
+
+
+def decode_data(frame: bytes, sizes: Mapping[str, int]) -> DataMessage:
+    """Decode and validate one data frame; ``sizes`` gives the expected payload lengths.
+
+    The payload stays raw bytes of validated length; :func:`payload_arrays` turns it into
+    float64 arrays when the algorithm needs it (only the newest message per neighbour is
+    ever converted). Probe frames carry an empty payload and come back with ``kind == PROBE``.
+    """
+    n = len(frame)
+    if n < 5 or n > MAX_DATA_FRAME:
+        raise WireError(f"data frame of {n} bytes; expected 5 to {MAX_DATA_FRAME}")
+    if _crc32(frame[:-4]) != _U32.unpack_from(frame, n - 4)[0]:
+        raise WireError("data frame fails its checksum")
+    try:
+        obj = _unpackb(frame[:-4], ext_hook=_refuse_ext)
+    except WireError:
+        raise
+    except Exception as exc:  # msgpack's rejections (ValueError subclasses, TypeError)
+        raise WireError(f"data frame does not decode: {type(exc).__name__}: {exc}") from None
+    if type(obj) is not list or len(obj) != 7:
+        raise WireError("data frame is not a 7-element array")
+    kind, sender, epoch, seq, iteration, send_time, raw = obj
+    if (
+        type(sender) is not int
+        or type(epoch) is not int
+        or type(seq) is not int
+        or type(iteration) is not int
+        or type(send_time) is not float
+        or type(raw) is not dict
+    ):
+        raise WireError("data frame header has wrong types")
+    if kind == PROBE and not raw:
+        return DataMessage(kind, sender, epoch, seq, iteration, send_time, raw)
+    if kind != DATA or seq < 0 or iteration < 0 or epoch < 0:
+        raise WireError(f"data frame header out of range (kind {kind!r}, seq {seq})")
+    if len(raw) != len(sizes):
+        raise WireError(f"payload has keys {sorted(map(str, raw))}; expected {sorted(sizes)}")
+    for key, size in sizes.items():
+        b = raw.get(key)
+        if type(b) is not bytes or len(b) != 8 * size:
+            raise WireError(f"payload {key!r} missing or not {size} float64 values")
+    return DataMessage(kind, sender, epoch, seq, iteration, send_time, raw)
+
+
+def payload_arrays(raw: Mapping[str, bytes]) -> dict[str, np.ndarray]:
+    """The float64 arrays of a validated payload (read-only views, no copy)."""
+    return {k: np.frombuffer(b, dtype=_F64) for k, b in raw.items()}
+
+
+# --- control frames -------------------------------------------------------------------
+_NUM = (int, float)
+#: type -> required keys and their accepted Python types (extra keys are refused)
+CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
+    # agent -> coordinator
+    "hello": {"agent": int, "host": str, "pid": int, "version": str},
+    "bound": {"endpoint": str},
+    "ready": {},
+    "pong": {"seq": int, "t_coord": _NUM, "t_node": _NUM},
+    "tel": {"samples": list, "links": dict, "counters": dict},
+    "ack": {"directive": int, "t_node": _NUM},
+    "final": {"state": dict, "iteration": int, "links": dict, "counters": dict, "reason": str},
+    "failed": {"error": str},
+    # coordinator -> agent
+    "plan": {"plan": dict},
+    "peers": {"peers": dict},
+    "ping": {"seq": int, "t_coord": _NUM},
+    "go": {"start_node": _NUM, "iteration": int},
+    "directive": {"directive": int, "action": str, "fault": dict},
+    "process": {"action": str, "factor": _NUM},
+    "stop": {"reason": str},
+    "beat": {},
+    "refuse": {"reason": str},
+}
+
+
+def encode_control(kind: str, **fields: Any) -> bytes:
+    if kind not in CONTROL_SCHEMA:
+        raise WireError(f"unknown control message type {kind!r}")
+    fields["t"] = kind
+    return msgpack.packb(fields, default=_default)
+
+
+def _default(obj: Any) -> Any:
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    raise TypeError(f"cannot encode {type(obj).__name__}")
+
+
+def decode_control(frame: bytes) -> dict[str, Any]:
+    """Decode and validate one control frame against :data:`CONTROL_SCHEMA`."""
+    n = len(frame)
+    if n > MAX_CONTROL_FRAME:
+        raise WireError(f"control frame of {n} bytes; at most {MAX_CONTROL_FRAME}")
+    try:
+        obj = msgpack.unpackb(frame, ext_hook=_refuse_ext, strict_map_key=False)
+    except WireError:
+        raise
+    except Exception as exc:
+        raise WireError(f"control frame does not decode: {type(exc).__name__}: {exc}") from None
+    if type(obj) is not dict:
+        raise WireError("control frame is not a map")
+    kind = obj.get("t")
+    schema = CONTROL_SCHEMA.get(kind) if isinstance(kind, str) else None
+    if schema is None:
+        raise WireError(f"control frame has unknown type {kind!r}")
+    for key, typ in schema.items():
+        if key not in obj:
+            raise WireError(f"control {kind!r} lacks key {key!r}")
+        v = obj[key]
+        if not isinstance(v, typ) or isinstance(v, bool) and typ is not bool:
+            raise WireError(f"control {kind!r} key {key!r} has type {type(v).__name__}")
+    extra = set(obj) - set(schema) - {"t"}
+    if extra:
+        raise WireError(f"control {kind!r} has unexpected keys {sorted(map(str, extra))}")
+    return obj
