@@ -12,8 +12,9 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
-import networkx as nx
 import numpy as np
+from scipy import sparse
+from scipy.sparse import csgraph
 
 from topologies._build import Topology
 from topologies._errors import TopologyError
@@ -126,8 +127,11 @@ def laplacian_step_limit(top: Topology) -> float:
     _require_undirected(
         top, "the exact Laplacian step limit", "use laplacian_step_bound() for directed links"
     )
-    top_eig = float(np.linalg.eigvalsh(laplacian(top))[-1])
-    return math.inf if top_eig <= _TOL else 2.0 / top_eig
+    return _step_limit(float(np.linalg.eigvalsh(laplacian(top))[-1]))
+
+
+def _step_limit(lambda_max: float) -> float:
+    return math.inf if lambda_max <= _TOL else 2.0 / lambda_max
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -243,9 +247,11 @@ def spectral_facts(W: np.ndarray, *, where: str = "mixing matrix") -> SpectralFa
     perron: np.ndarray | None
     rho: float | None
     if symmetric and rows_one:
-        # Doubly stochastic (in the sum sense): π = 1/n exactly, and W - 11ᵀ/n stays symmetric.
+        # Doubly stochastic (in the sum sense): π = 1/n exactly. W - 11ᵀ/n has W's
+        # eigenvalues with one eigenvalue 1 (eigenvector 1) replaced by 0.
         perron = np.full(n, 1.0 / n)
-        rho = float(np.max(np.abs(np.linalg.eigvalsh(w - 1.0 / n))))
+        rest = np.delete(eig, np.argmin(np.abs(eig - 1.0)))
+        rho = float(np.max(np.abs(rest))) if rest.size else 0.0
     elif rows_one or cols_one:
         ones = np.ones(n)
         if rows_one:
@@ -335,13 +341,14 @@ class GraphFacts:
 
 def graph_facts(top: Topology) -> GraphFacts:
     """Compute :class:`GraphFacts` for ``top``. Cost: O(n^3) (dense eigen-solvers)
-    plus O(n · links) for the diameter."""
+    plus O(n · links) for the diameter (breadth-first search from every agent)."""
     d = degrees(top)
     links = top.graph.number_of_edges()
-    connected = (
-        nx.is_strongly_connected(top.graph) if top.directed else nx.is_weakly_connected(top.graph)
-    )
-    diameter = int(nx.diameter(top.graph)) if connected else None
+    # all-pairs hop counts by breadth-first search in compiled code; row u = paths from u
+    src, dst = np.array(top.edges(), dtype=np.int64).reshape(-1, 2).T
+    links_matrix = sparse.csr_array((np.ones(src.size), (src, dst)), shape=(top.n, top.n))
+    hops = csgraph.shortest_path(links_matrix, method="D", directed=True, unweighted=True)
+    diameter = int(hops.max()) if np.all(np.isfinite(hops)) else None
     if top.directed:
         lam2 = lam_n = limit = None
         metropolis = None
@@ -349,7 +356,7 @@ def graph_facts(top: Topology) -> GraphFacts:
         spectrum = np.linalg.eigvalsh(laplacian(top))
         lam2 = float(spectrum[1]) if top.n > 1 else 0.0
         lam_n = float(spectrum[-1])
-        limit = laplacian_step_limit(top)
+        limit = _step_limit(lam_n)
         metropolis = spectral_facts(metropolis_weights(top), where="Metropolis–Hastings weights")
     return GraphFacts(
         n=top.n,
