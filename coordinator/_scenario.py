@@ -76,6 +76,7 @@ DELAY_DISTRIBUTIONS: Mapping[str, tuple[str, ...]] = {
 TRANSPORTS = ("tcp", "ipc")
 #: how far a priority vector's sum may be from one
 PRIORITY_SUM_TOLERANCE = 1e-9
+_SUM_TOLERANCE_TEXT = "1e-9"
 
 #: Every concrete default, in one place. Keys are tables; "table.variant" holds the defaults
 #: that apply only to one kind, shape, rule or distribution. Defaults that depend on other
@@ -99,7 +100,7 @@ DEFAULTS: Mapping[str, Mapping[str, Any]] = {
         "batch_ms": 50.0,
         "delay_samples": False,
     },
-    "network": {"transport": "tcp", "host": "127.0.0.1"},
+    "network": {"transport": "ipc", "host": "127.0.0.1"},
     "fault": {"start_s": 0.0, "start_iteration": 0},
     "fault.burst-loss": {"loss_good": 0.0, "loss_bad": 1.0},
     "fault.delay": {"distribution": "constant", "jitter_ms": 0.0, "fifo": False},
@@ -469,7 +470,11 @@ def _check_top_level(raw: Mapping[str, Any], src: str) -> None:
             what = f"unknown table [{key}]"
         else:
             what = f'key "{key}" outside any table'
-        hint_text = f" (did you mean [{hint}]?)" if hint else ""
+        hint_text = ""
+        if hint:
+            hint_text = (
+                f" (did you mean [[{hint}]]?)" if hint in _ARRAYS else f" (did you mean [{hint}]?)"
+            )
         raise ScenarioError(f"{src}: {what}; expected one of: {', '.join(names)}{hint_text}")
 
 
@@ -627,7 +632,8 @@ def _algorithm(t: _Table) -> dict[str, Any]:
             out[key] = t.boolean(key)
         elif key == "step_rule":
             # "plan" hands the [algorithm].step rule on; otherwise a step of its own
-            out[key] = "plan" if t.data[key] == "plan" else _step(t, key, also='"plan", ')
+            plan = isinstance(t.data[key], str) and t.data[key] == "plan"
+            out[key] = "plan" if plan else _step(t, key, also='"plan", ')
         else:  # priority_averaging: a switch or a variant name
             value = t.data[key]
             if not isinstance(value, bool | str) or value == "":
@@ -821,7 +827,9 @@ def _fault_params(t: _Table, kind: str, distribution: str | None) -> dict[str, A
             out["ms"] = t.number("ms", lo=0.0)
         elif distribution == "uniform":
             low = out["low_ms"] = t.number("low_ms", lo=0.0)
-            out["high_ms"] = t.number("high_ms", lo=low, lo_open=True)
+            high = out["high_ms"] = t.number("high_ms", lo=0.0)
+            if high <= low:
+                t.fail("high_ms", f"expected a number > low_ms = {low:g}, got {_show(high)}")
         elif distribution == "normal":
             out["mean_ms"] = t.number("mean_ms")
             out["sd_ms"] = t.number("sd_ms", lo=0.0, lo_open=True)
@@ -1018,7 +1026,9 @@ def _array_of_tables(raw: Any, name: str, src: str) -> list[Mapping[str, Any]]:
             f"{src}: [{name}]: expected [[{name}]] tables (an array of tables), got one [{name}] table"
         )
     if not _is_seq(raw):
-        raise ScenarioError(f"{src}: {name}: expected [[{name}]] tables, got {_show(raw)}")
+        raise ScenarioError(
+            f"{src}: [[{name}]]: expected [[{name}]] tables (an array of tables), got {_show(raw)}"
+        )
     for pos, entry in enumerate(raw):
         if not isinstance(entry, Mapping):
             raise ScenarioError(f"{src}: [[{name}]] #{pos}: expected a table, got {_show(entry)}")
@@ -1067,7 +1077,7 @@ def _priority_vector(t: _Table, key: str, value: Any, n: int) -> list[float]:
             t.fail(f"{key}[{i}]", f"expected a priority >= 0, got {_show(value[i])}")
     total = math.fsum(vec)
     if abs(total - 1.0) > PRIORITY_SUM_TOLERANCE:
-        t.fail(key, f"entries sum to {total:.12g}; expected 1 within {PRIORITY_SUM_TOLERANCE:g}")
+        t.fail(key, f"entries sum to {total:.12g}; expected 1 within {_SUM_TOLERANCE_TEXT}")
     return vec
 
 
@@ -1136,13 +1146,16 @@ def _show(v: Any) -> str:
 
 
 def _range_text(kind: str, lo: float | None, lo_open: bool, hi: float | None, hi_open: bool) -> str:
+    def num(x: float) -> str:
+        return str(x) if isinstance(x, int) else f"{x:g}"
+
     if lo is not None and hi is not None:
         left, right = "(" if lo_open else "[", ")" if hi_open else "]"
-        return f"{kind} in {left}{lo:g}, {hi:g}{right}"
+        return f"{kind} in {left}{num(lo)}, {num(hi)}{right}"
     if lo is not None:
-        return f"{kind} {'>' if lo_open else '>='} {lo:g}"
+        return f"{kind} {'>' if lo_open else '>='} {num(lo)}"
     if hi is not None:
-        return f"{kind} {'<' if hi_open else '<='} {hi:g}"
+        return f"{kind} {'<' if hi_open else '<='} {num(hi)}"
     return kind
 
 
@@ -1380,7 +1393,11 @@ def describe_keys() -> list[tuple[str, str, str]]:
             _lit(D["telemetry"]["delay_samples"]),
             "also report every injected delay (for delay statistics per link)",
         ),
-        ("[network].transport", _lit(D["network"]["transport"]), '"tcp" or "ipc" (local only)'),
+        (
+            "[network].transport",
+            _lit(D["network"]["transport"]),
+            '"ipc" (Unix sockets, used only when every agent runs on this machine) or "tcp"',
+        ),
         ("[network].host", _lit(D["network"]["host"]), "address the agents bind on"),
         ("[[agent]].id", "required", "the agent these overrides are for, in [0, agents - 1]"),
         ("[[agent]].target", "drawn from the seed", "quadratic: this agent's target, d numbers"),
