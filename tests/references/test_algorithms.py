@@ -3,15 +3,18 @@ results and numpy recomputations of the [derived] values of methods.md."""
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 
 from coordinator._reference import reference_optimum, total_objective
-from node._algorithm import Received
+from node._algorithm import Received, algorithm_class
 from node._dgd import DGD
 from node._gradient_tracking import GradientTracking
 from node._memory import run_in_memory
 from node._objectives import Quadratic
+from node._priority import PriorityWeighted
 from node._pushsum import PushSum
 from node._ratio import RatioConsensus
 from tests.references._specs import (
@@ -329,3 +332,56 @@ def test_ratio_consensus_averages_priorities_on_request() -> None:
     assert all(np.array_equal(s.priorities, p) for s, p in zip(plain, priorities, strict=True))
     with pytest.raises(ScenarioError, match="agent 0: ratio-consensus 'average_priorities'"):
         RatioConsensus(make_specs(w, zero, x0, params={"average_priorities": "yes"})[0])
+
+
+# ---------------------------------------------------------------------------------------------
+# The sans-IO contract of node/_algorithm.py, for every algorithm of this library
+
+CONTRACT_CASES = {
+    "gradient-tracking": (GradientTracking, {}),
+    "push-sum/average": (PushSum, {"mode": "average"}),
+    "push-sum/optimize": (PushSum, {"mode": "optimize"}),
+    "ratio-consensus": (RatioConsensus, {"average_priorities": True}),
+    "priority-weighted/laplacian": (PriorityWeighted, {"gain": 0.2}),
+    "priority-weighted/ratio": (PriorityWeighted, {"priority_averaging": "ratio"}),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CONTRACT_CASES))
+def test_algorithm_contract(case: str) -> None:
+    cls, params = CONTRACT_CASES[case]
+    assert algorithm_class(cls.name) is cls  # importing the module registered it
+    n, d = 5, 3
+    rng = np.random.default_rng(0)
+    specs = make_specs(
+        metropolis(ring_adjacency(n)),
+        unit_quadratics(rng.normal(size=(n, d))),
+        rng.normal(size=(n, d)),
+        priorities=rng.dirichlet(np.ones(n), size=n),
+        step=0.1,
+        params=params,
+    )
+    agents = build(cls, specs)
+    sizes = agents[0].payload_sizes()
+    states, payloads = zip(*(a.init() for a in agents), strict=True)
+    for k in range(3):
+        inbox = {j: Received(k, payloads[j], fresh=(k != 1)) for j in specs[0].in_neighbours}
+        for p in payloads:
+            assert set(p) == set(sizes)
+            for key, arr in p.items():
+                assert isinstance(arr, np.ndarray) and arr.dtype == np.float64
+                assert arr.shape == (sizes[key],)
+        before = {f: np.copy(getattr(states[0], f)) for f in ("x",)}
+        first = agents[0].step(states[0], inbox, k)
+        again = agents[0].step(states[0], inbox, k)
+        # pure: same inputs, same outputs; the input state is left as it was
+        assert np.array_equal(first[0].x, again[0].x)
+        assert all(np.array_equal(first[1][key], again[1][key]) for key in sizes)
+        assert np.array_equal(states[0].x, before["x"])
+        assert first[0].x.shape == (d,)
+        assert first[0].priorities is None or first[0].priorities.shape == (n,)
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            first[0].x = np.zeros(d)
+        stepped = [first] + [a.step(s, {}, k) for a, s in zip(agents[1:], states[1:], strict=True)]
+        states = tuple(s for s, _ in stepped)
+        payloads = tuple(p for _, p in stepped)
