@@ -27,6 +27,7 @@ import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any, NoReturn
 
 import numpy as np
@@ -81,7 +82,7 @@ _SUM_TOLERANCE_TEXT = "1e-9"
 #: Every concrete default, in one place. Keys are tables; "table.variant" holds the defaults
 #: that apply only to one kind, shape, rule or distribution. Defaults that depend on other
 #: keys or on the graph are described in :func:`describe_keys` instead.
-DEFAULTS: Mapping[str, Mapping[str, Any]] = {
+_DEFAULTS: dict[str, dict[str, Any]] = {
     "swarm": {"dimension": 2, "mode": "rounds", "iterations": 2000, "tolerance": 1e-3},
     "objective": {"kind": "quadratic"},
     "objective.quadratic": {"spread": 10.0, "curvature": "identity"},
@@ -106,6 +107,9 @@ DEFAULTS: Mapping[str, Mapping[str, Any]] = {
     "fault.delay": {"distribution": "constant", "jitter_ms": 0.0, "fifo": False},
     "fault.crash": {"restart_state": "initial"},
 }
+DEFAULTS: Mapping[str, Mapping[str, Any]] = MappingProxyType(
+    {section: MappingProxyType(values) for section, values in _DEFAULTS.items()}
+)
 
 _TABLES = (
     "swarm",
@@ -509,8 +513,7 @@ def check_topology_params(
     if shape == "grid":
         _grid(t, agents, out)
     elif shape == "random-geometric":
-        # nodes in the unit square (Penrose, Random Geometric Graphs, 2003)
-        # beyond sqrt(2), the unit square's diagonal, every pair is linked already
+        # agents lie in the unit square: beyond its diagonal, sqrt(2), every pair is linked
         out["radius"] = t.number("radius", lo=0.0, lo_open=True, hi=math.sqrt(2))
     elif shape == "erdos-renyi":
         out["p"] = t.number("p", lo=0.0, lo_open=True, hi=1.0)
