@@ -1,9 +1,9 @@
 """The centralized reference: minimize F(x) = sum_j w_j f_j(x) for any nonnegative weights.
 
 Quadratics have a closed form, x* = (sum w_j Q_j)^-1 sum w_j Q_j t_j; other objectives are
-solved with scipy.optimize (L-BFGS-B with a tight gradient tolerance; if its line search
-stops early, where F's rounding hides further decrease, a root solve of grad F = 0 polishes
-the point) and the solver's method and tolerance are reported with the result.
+solved with scipy.optimize (L-BFGS-B with a tight gradient tolerance, then a root solve of
+grad F = 0 from its point, which F's rounding cannot stall the way it stalls a line search)
+and the solver's method and tolerance are reported with the result.
 """
 
 from __future__ import annotations
@@ -117,8 +117,8 @@ def reference_optimum(
 
     All-quadratic problems use the closed form (``method="closed-form"``, tolerance 0).
     Otherwise scipy's L-BFGS-B runs from ``x0`` (default: zeros) with gradient tolerance
-    ``GTOL``; if it stops with a larger gradient, scipy's ``root`` (hybr) solves
-    grad F = 0 from its point, which rounding in F does not limit. The result
+    ``GTOL``; then scipy's ``root`` (hybr) solves grad F = 0 from its point and is kept
+    when it lowers the gradient without raising F (``method="L-BFGS-B+hybr"``). The result
     carries the method(s) used, ``GTOL``, and the final gradient max-norm; a solve that
     ends with a gradient max-norm above 1e-7 raises ObjectiveError.
     """
@@ -150,10 +150,13 @@ def reference_optimum(
     method = "L-BFGS-B"
     x = res.x
     gnorm = float(np.max(np.abs(fun(x)[1])))
-    if not gnorm <= GTOL:
+    if gnorm > 0.0:
         polish = root(lambda z: fun(z)[1], x, method="hybr", options={"xtol": 1e-15})
-        g2 = float(np.max(np.abs(fun(polish.x)[1])))
-        if g2 < gnorm:
+        f2, grad2 = fun(polish.x)
+        g2 = float(np.max(np.abs(grad2)))
+        # kept only if it did not climb: a root of grad F can also be a saddle or a maximum
+        f1 = fun(x)[0]
+        if np.all(np.isfinite(polish.x)) and g2 < gnorm and f2 <= f1 + 1e-12 * max(1.0, abs(f1)):
             x, gnorm, method = polish.x, g2, "L-BFGS-B+hybr"
     if not (np.all(np.isfinite(x)) and gnorm <= _ACCEPT):
         raise ObjectiveError(
