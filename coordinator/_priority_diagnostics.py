@@ -40,11 +40,13 @@ _ROW_TOLERANCE = 1e-9
 
 
 def mixing_matrix(rows: Mapping[int, Mapping[int, float]], n: int) -> np.ndarray:
-    """The n x n matrix with A[i, j] = rows[i][j] (0 where absent).
+    """The n x n matrix with A[i, j] = rows[i][j] (0 where absent); ids may be strings.
 
     Every agent 0..n-1 must have a row; entries must be >= 0 with ids in 0..n-1 and each
     row must sum to 1 (within 1e-9), else SwarmrigError naming the agent.
     """
+    # telemetry that went through JSON has string keys
+    rows = {int(i): row for i, row in rows.items()}
     a = np.zeros((n, n))
     for i in range(n):
         if i not in rows:

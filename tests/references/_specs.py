@@ -85,10 +85,7 @@ def make_specs(
     """One AgentSpec per row of ``weights``: W[i, j] > 0 (j != i) means i hears j."""
     w = np.asarray(weights, dtype=float)
     n = w.shape[0]
-    x0 = np.atleast_2d(np.asarray(x0, dtype=float))
-    if x0.shape[0] == 1 and n > 1 and x0.shape[1] != 1:
-        x0 = np.repeat(x0, n, axis=0)
-    x0 = x0.reshape(n, -1)
+    x0 = np.asarray(x0, dtype=float).reshape(n, -1)  # one row per agent
     hears = (w > 0) & ~np.eye(n, dtype=bool)
     ins = [tuple(int(j) for j in np.flatnonzero(hears[i])) for i in range(n)]
     outs = [tuple(int(i) for i in np.flatnonzero(hears[:, j])) for j in range(n)]

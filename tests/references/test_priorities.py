@@ -428,6 +428,8 @@ def test_several_closed_classes_follow_the_documented_rule() -> None:
 
 
 def test_mixing_matrix_rejects_inconsistent_rows() -> None:
+    from_json = json.loads(json.dumps({0: {0: 0.25, 1: 0.75}, 1: {1: 1.0}}))
+    assert np.array_equal(mixing_matrix(from_json, 2), [[0.25, 0.75], [0.0, 1.0]])
     with pytest.raises(SwarmrigError, match="agent 1 reported no mixing row"):
         mixing_matrix({0: {0: 1.0}}, 2)
     with pytest.raises(SwarmrigError, match=r"agent 0's row sums to 0\.9"):

@@ -187,7 +187,8 @@ def test_logistic_optimum_matches_an_independent_newton_solve(weighting: str) ->
     weights = WEIGHTINGS[weighting]
     ref = reference_optimum(agents, weights)
     x_ind = _independent_logistic(agents, weights)
-    assert np.linalg.norm(ref.x_star - x_ind) <= 1e-6 * np.linalg.norm(x_ind)
+    # asked: 1e-6 relative; measured: below 3e-17
+    assert np.linalg.norm(ref.x_star - x_ind) <= 1e-10 * np.linalg.norm(x_ind)
     assert ref.method.startswith("L-BFGS-B") and ref.tolerance == GTOL
     assert ref.grad_norm <= GTOL
     assert ref.F_star == pytest.approx(total_objective(agents, weights, x_ind), rel=1e-12)
@@ -199,7 +200,8 @@ def test_huber_optimum_matches_an_independent_newton_solve(weighting: str) -> No
     weights = WEIGHTINGS[weighting]
     ref = reference_optimum(agents, weights)
     x_ind = _independent_huber(agents, weights)
-    assert np.linalg.norm(ref.x_star - x_ind) <= 1e-6 * np.linalg.norm(x_ind)
+    # asked: 1e-6 relative; measured: below 3e-17
+    assert np.linalg.norm(ref.x_star - x_ind) <= 1e-10 * np.linalg.norm(x_ind)
     # at the optimum some residuals sit beyond delta: both pieces of h are in play
     r = np.concatenate([f.features @ ref.x_star - f.responses for f in agents])
     assert np.any(np.abs(r) > 0.5) and np.any(np.abs(r) <= 0.5)
@@ -215,11 +217,11 @@ def test_gradient_tracking_reaches_the_reference(kind: str) -> None:
     step = 0.3 / max(float(f.smoothness()) for f in agents)
     w = metropolis(ring_adjacency(N))
     states = run_in_memory(
-        build(GradientTracking, make_specs(w, agents, np.zeros((N, D)), step=step)), 2000
+        build(GradientTracking, make_specs(w, agents, np.zeros((N, D)), step=step)), 1000
     )
     x = np.array([s.x for s in states])
-    # measured: ~3e-10 (logistic), ~1e-12 (Huber) relative
-    assert np.max(np.linalg.norm(x - ref.x_star, axis=1)) <= 1e-6 * np.linalg.norm(ref.x_star)
+    # asked: 1e-6 relative; measured: 4.6e-15 (logistic), 1.6e-15 (Huber)
+    assert np.max(np.linalg.norm(x - ref.x_star, axis=1)) <= 1e-10 * np.linalg.norm(ref.x_star)
 
 
 def test_mixed_kinds_and_custom_objectives_use_scipy() -> None:
