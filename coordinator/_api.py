@@ -41,8 +41,9 @@ def run(
     and puts its figures beside the faulty run's under ``summary["baseline"]``.
     """
     swarm = scenario if isinstance(scenario, Swarm) else load(scenario)
-    opts = RunOptions(out=None if out is None else Path(out), runs_root=Path(runs_root),
-                      view=view, **options)
+    opts = RunOptions(
+        out=None if out is None else Path(out), runs_root=Path(runs_root), view=view, **options
+    )
     result = execute(swarm, opts)
     if baseline:
         from coordinator._baseline import attach_baseline
@@ -62,7 +63,11 @@ def check(scenario: str | Path | Mapping[str, Any] | Scenario) -> dict[str, Any]
         "scenario": swarm.scenario.to_dict(),
         "resolved_toml": swarm.scenario.to_toml(),
         "graph": facts,
-        "reference": {"x_star": ref.x_star.tolist(), "F_star": ref.F_star,
-                      "method": ref.method, "tolerance": ref.tolerance},
+        "reference": {
+            "x_star": ref.x_star.tolist(),
+            "F_star": ref.F_star,
+            "method": ref.method,
+            "tolerance": ref.tolerance,
+        },
         "intended_priorities": swarm.intended.tolist(),
     }

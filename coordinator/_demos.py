@@ -14,7 +14,9 @@ def list_demos() -> list[tuple[str, str]]:
     """(name, first comment line) of every demo."""
     out = []
     for p in sorted(_DIR.glob("*.toml")):
-        first = next((ln[1:].strip() for ln in p.read_text().splitlines() if ln.startswith("#")), "")
+        first = next(
+            (ln[1:].strip() for ln in p.read_text().splitlines() if ln.startswith("#")), ""
+        )
         out.append((p.stem, first))
     return out
 
@@ -22,4 +24,3 @@ def list_demos() -> list[tuple[str, str]]:
 def demo_path(name: str) -> Path | None:
     p = _DIR / f"{name}.toml"
     return p if p.is_file() else None
-

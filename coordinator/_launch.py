@@ -48,8 +48,9 @@ class ForkServer:
         return self._out
 
     def spawn(self, agent: int, join: str, log: str, heartbeat: float) -> None:
-        self._send({"op": "spawn", "agent": agent, "join": join, "log": log,
-                    "heartbeat": heartbeat})
+        self._send(
+            {"op": "spawn", "agent": agent, "join": join, "log": log, "heartbeat": heartbeat}
+        )
 
     def kill(self, pid: int, sig: int = signal.SIGKILL) -> None:
         # Signal directly: the coordinator owns the timing of process faults.

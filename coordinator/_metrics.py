@@ -106,8 +106,17 @@ def link_accounting(
         lst.sort(key=lambda r: r.epoch)
     rows = []
     tot = dict.fromkeys(
-        ("sent", "delivered", "dropped_injected", "lost_transport", "rejected", "duplicated",
-         "in_flight"), 0)
+        (
+            "sent",
+            "delivered",
+            "dropped_injected",
+            "lost_transport",
+            "rejected",
+            "duplicated",
+            "in_flight",
+        ),
+        0,
+    )
     for src, dst in links:
         row = dict.fromkeys(tot, 0)
         medians, p95s, maxes, weights = [], [], [], []

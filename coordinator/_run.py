@@ -10,8 +10,10 @@ import contextlib
 import getpass
 import os
 import platform
+import shutil
 import signal
 import socket
+import tempfile
 import threading
 import time
 from collections.abc import Callable
@@ -26,7 +28,7 @@ from coordinator._launch import ForkServer
 from coordinator._metrics import AgentRecord, link_accounting, metric_series, time_to_tolerance
 from coordinator._reference import total_objective
 from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
-from coordinator._swarm import Swarm
+from coordinator._swarm import Swarm, with_transport
 from node._errors import WireError
 from node._wire import decode_control, encode_control
 from topologies._errors import SwarmrigError
@@ -132,6 +134,7 @@ class Coordinator:
         self.dir = RunDir(Path(out))
         self.view = options.view
         self.run_json: dict[str, Any] = {}
+        self.ipc_dir: str | None = None
 
     # -- helpers -----------------------------------------------------------------------
     def now_s(self) -> float:
@@ -177,14 +180,25 @@ class Coordinator:
                 "libzmq": zmq.zmq_version(),
                 "numpy": np.__version__,
             },
-            coordinator={"host": socket.gethostname(), "pid": os.getpid(),
-                         "user": getpass.getuser(), "endpoint": self.endpoint},
+            coordinator={
+                "host": socket.gethostname(),
+                "pid": os.getpid(),
+                "user": getpass.getuser(),
+                "endpoint": self.endpoint,
+            },
             label=self.opt.label,
             started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             stopped_utc=None,
             exit="starting",
             process_group=None,
         )
+        if (
+            self.opt.launch_local
+            and self.opt.listen is None
+            and self.s.network["transport"] == "ipc"
+        ):
+            self.ipc_dir = tempfile.mkdtemp(prefix="swarmrig-")
+            self.swarm = with_transport(self.swarm, "ipc", self.ipc_dir)
         if self.opt.launch_local:
             self.fork = ForkServer()
             self.write_run_json(process_group=self.fork.pgid)
@@ -251,17 +265,23 @@ class Coordinator:
         elif kind == "tel":
             self.on_telemetry(a, msg)
         elif kind == "final":
-            self.on_telemetry(a, {"samples": [], "links": msg["links"],
-                                  "counters": msg["counters"]})
+            self.on_telemetry(
+                a, {"samples": [], "links": msg["links"], "counters": msg["counters"]}
+            )
             a.record.final = msg
             a.finished = True
             self.dir.telemetry(a.id, {"epoch": a.epoch, "final": msg})
         elif kind == "ack":
             d = self.directives.get(int(msg["directive"]))
             if d is not None:
-                self.event("fault-applied", fault=d["index"], directive=int(msg["directive"]),
-                           action=d["action"], agent=a.id,
-                           t_node_s=float(msg["t_node"]) - a.offset - (self.t_go or 0.0))
+                self.event(
+                    "fault-applied",
+                    fault=d["index"],
+                    directive=int(msg["directive"]),
+                    action=d["action"],
+                    agent=a.id,
+                    t_node_s=float(msg["t_node"]) - a.offset - (self.t_go or 0.0),
+                )
         elif kind == "failed":
             err = str(msg["error"])
             self.failures.append(err)
@@ -304,14 +324,18 @@ class Coordinator:
         a.restart_pending = False
         a.records.append(AgentRecord(agent=i, epoch=a.epoch))
         a.start_iteration = start_iteration
-        plan = self.swarm.plan(i, a.epoch, start_state=start_state,
-                               start_iteration=start_iteration)
+        plan = self.swarm.plan(i, a.epoch, start_state=start_state, start_iteration=start_iteration)
         self.send(a, "plan", plan=plan)
         self.ping(a)
         if restart:
-            self.event("agent-rejoined", agent=i, epoch=a.epoch, pid=a.pid,
-                       start_iteration=start_iteration,
-                       state="last" if start_state is not None else "initial")
+            self.event(
+                "agent-rejoined",
+                agent=i,
+                epoch=a.epoch,
+                pid=a.pid,
+                start_iteration=start_iteration,
+                state="last" if start_state is not None else "initial",
+            )
 
     def ping(self, a: _Agent) -> None:
         seq = len(a.pings)
@@ -321,8 +345,11 @@ class Coordinator:
 
     def peers_table(self, i: int) -> dict[int, list[Any]]:
         top = self.swarm.topology
-        return {j: [self.agents[j].endpoint, self.agents[j].epoch] for j in top.in_neighbours(i)
-                if self.agents[j].endpoint is not None}
+        return {
+            j: [self.agents[j].endpoint, self.agents[j].epoch]
+            for j in top.in_neighbours(i)
+            if self.agents[j].endpoint is not None
+        }
 
     def peers_for_restart(self, a: _Agent) -> None:
         self.send(a, "peers", peers=self.peers_table(a.id))
@@ -369,8 +396,7 @@ class Coordinator:
         assert self.t_go is not None
         start = max(self.t_go, self.clock())
         a.running = True
-        self.send(a, "go", start_node=start + a.offset,
-                  iteration=a.start_iteration)
+        self.send(a, "go", start_node=start + a.offset, iteration=a.start_iteration)
 
     # -- telemetry ---------------------------------------------------------------------
     def on_telemetry(self, a: _Agent, msg: dict[str, Any]) -> None:
@@ -381,9 +407,17 @@ class Coordinator:
         rec.links = {int(k): {int(e): v for e, v in per.items()} for k, per in msg["links"].items()}
         rec.counters = msg["counters"]
         if msg["samples"]:
-            self.dir.telemetry(a.id, {"epoch": a.epoch, "offset": a.offset, "t_go": t0,
-                                      "samples": msg["samples"], "links": msg["links"],
-                                      "counters": msg["counters"]})
+            self.dir.telemetry(
+                a.id,
+                {
+                    "epoch": a.epoch,
+                    "offset": a.offset,
+                    "t_go": t0,
+                    "samples": msg["samples"],
+                    "links": msg["links"],
+                    "counters": msg["counters"],
+                },
+            )
 
     # -- the fault timeline ------------------------------------------------------------
     def schedule(self, at_s: float, what: str, action: Callable[[], None]) -> None:
@@ -394,8 +428,9 @@ class Coordinator:
         for tf in self.swarm.timed_faults:
             self.schedule(tf["at_s"], "link-fault-on", lambda tf=tf: self.link_fault(tf, "add"))
             if tf["until_s"] is not None:
-                self.schedule(tf["until_s"], "link-fault-off",
-                              lambda tf=tf: self.link_fault(tf, "remove"))
+                self.schedule(
+                    tf["until_s"], "link-fault-off", lambda tf=tf: self.link_fault(tf, "remove")
+                )
         for pf in self.swarm.process_faults:
             start = float(pf.get("start_s") or 0.0)
             dur = pf.get("duration_s")
@@ -404,14 +439,16 @@ class Coordinator:
                     self.schedule(start, "crash", lambda i=i, pf=pf: self.crash(i, pf))
                 elif pf["kind"] == "pause":
                     self.schedule(start, "pause", lambda i=i, pf=pf: self.pause(i, pf, True))
-                    self.schedule(start + float(dur), "resume",
-                                  lambda i=i, pf=pf: self.pause(i, pf, False))
+                    self.schedule(
+                        start + float(dur), "resume", lambda i=i, pf=pf: self.pause(i, pf, False)
+                    )
                 elif pf["kind"] == "slow":
                     factor = float(pf["params"]["factor"])
                     self.schedule(start, "slow", lambda i=i, f=factor, pf=pf: self.slow(i, pf, f))
                     if dur is not None:
-                        self.schedule(start + float(dur), "slow-end",
-                                      lambda i=i, pf=pf: self.slow(i, pf, 1.0))
+                        self.schedule(
+                            start + float(dur), "slow-end", lambda i=i, pf=pf: self.slow(i, pf, 1.0)
+                        )
         for entries in self.swarm.armed_faults.values():
             for e in entries:
                 self.active_faults[int(e["fault"]["index"])] = e["fault"]
@@ -421,14 +458,24 @@ class Coordinator:
             self.directive_seq += 1
             self.directives[self.directive_seq] = {"index": tf["index"], "action": action}
             a = self.agents[int(dst)]
-            self.send(a, "directive", directive=self.directive_seq, action=action,
-                      fault={**entry, "index": tf["index"]})
+            self.send(
+                a,
+                "directive",
+                directive=self.directive_seq,
+                action=action,
+                fault={**entry, "index": tf["index"]},
+            )
         if action == "add":
             self.active_faults[tf["index"]] = {"kind": tf["kind"]}
         else:
             self.active_faults.pop(tf["index"], None)
-        self.event("fault-sent", fault=tf["index"], kind=tf["kind"], action=action,
-                   links=[list(link) for link in tf["links"]])
+        self.event(
+            "fault-sent",
+            fault=tf["index"],
+            kind=tf["kind"],
+            action=action,
+            links=[list(link) for link in tf["links"]],
+        )
 
     def crash(self, i: int, pf: dict[str, Any]) -> None:
         a = self.agents[i]
@@ -444,7 +491,9 @@ class Coordinator:
         after = pf["params"].get("restart_after_s")
         if after is not None:
             a.restart_pending = True
-            self.schedule(self.now_s() + float(after), "restart", lambda a=a, pf=pf: self.restart(a, pf))
+            self.schedule(
+                self.now_s() + float(after), "restart", lambda a=a, pf=pf: self.restart(a, pf)
+            )
 
     def restart(self, a: _Agent, pf: dict[str, Any]) -> None:
         if self.fork is None or self.stop_requested:
@@ -459,8 +508,13 @@ class Coordinator:
             return
         with contextlib.suppress(ProcessLookupError):
             os.kill(a.pid, signal.SIGSTOP if stop else signal.SIGCONT)
-        self.event("pause" if stop else "resume", fault=pf["index"], agent=i, pid=a.pid,
-                   signal="SIGSTOP" if stop else "SIGCONT")
+        self.event(
+            "pause" if stop else "resume",
+            fault=pf["index"],
+            agent=i,
+            pid=a.pid,
+            signal="SIGSTOP" if stop else "SIGCONT",
+        )
 
     def slow(self, i: int, pf: dict[str, Any], factor: float) -> None:
         a = self.agents[i]
@@ -535,9 +589,14 @@ class Coordinator:
         sw = self.swarm
         s = self.s
         records = [r for a in self.agents for r in a.records]
-        metrics = metric_series(records, self.n, sw.objectives, sw.intended, sw.reference,
-                                by_iteration=s.mode == "rounds" and
-                                sw.telemetry["every_iterations"] > 0)
+        metrics = metric_series(
+            records,
+            self.n,
+            sw.objectives,
+            sw.intended,
+            sw.reference,
+            by_iteration=s.mode == "rounds" and sw.telemetry["every_iterations"] > 0,
+        )
         self.dir.write_csv("metrics.csv", METRIC_COLUMNS, metrics)
         links, totals = link_accounting(records, sw.topology.edges())
         self.dir.write_csv("links.csv", LINK_COLUMNS, links)
@@ -609,8 +668,13 @@ class Coordinator:
         }
         summary.update(self.extra_summary(records, x_hat))
         self.dir.write_json("summary.json", summary)
-        return RunResult(summary=summary, metrics=metrics, links=links, run_dir=self.dir.path,
-                         exit_code=self.exit_code)
+        return RunResult(
+            summary=summary,
+            metrics=metrics,
+            links=links,
+            run_dir=self.dir.path,
+            exit_code=self.exit_code,
+        )
 
     def final_time(self) -> float | None:
         times = [r.samples[-1][1] for a in self.agents for r in a.records if r.samples]
@@ -637,8 +701,13 @@ class Coordinator:
                 rows[a.id] = {int(k): float(v) for k, v in st["mixing_row"].items()}
         if len(finals_w) != self.n:
             return {}
-        return priority_report(sw.initial_priorities, np.asarray(finals_w), rows or None,
-                               sw.objectives, np.asarray(x_hat))
+        return priority_report(
+            sw.initial_priorities,
+            np.asarray(finals_w),
+            rows or None,
+            sw.objectives,
+            np.asarray(x_hat),
+        )
 
     # -- the whole run -----------------------------------------------------------------
     def execute(self) -> RunResult:
@@ -667,9 +736,12 @@ class Coordinator:
             self._restore_signals(handlers)
         self.event("stop", reason=self.exit_reason)
         result = self.results()
-        self.write_run_json(exit=self.exit_reason, exit_code=self.exit_code,
-                            stopped_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                            verdict=result.summary["verdict"])
+        self.write_run_json(
+            exit=self.exit_reason,
+            exit_code=self.exit_code,
+            stopped_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            verdict=result.summary["verdict"],
+        )
         self.dir.close()
         return result
 
@@ -680,6 +752,8 @@ class Coordinator:
             self.router.close(linger=0)
         if self.ctx is not None:
             self.ctx.term()
+        if self.ipc_dir is not None:
+            shutil.rmtree(self.ipc_dir, ignore_errors=True)
 
     def _install_signals(self) -> dict[int, Any]:
         if threading.current_thread() is not threading.main_thread():
@@ -704,4 +778,3 @@ class Coordinator:
 def execute(swarm: Swarm, options: RunOptions | None = None) -> RunResult:
     """Run one swarm to the end; the run directory is complete when this returns."""
     return Coordinator(swarm, options or RunOptions()).execute()
-

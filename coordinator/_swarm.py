@@ -6,7 +6,7 @@ with one purpose number per kind of draw, so a seed fixes the whole swarm.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -21,7 +21,7 @@ from node._objectives import Objective, objective_from_spec
 from node._rng import agent_generator
 from topologies._errors import ScenarioError
 
-__all__ = ["LINK_FAULTS", "PROCESS_FAULTS", "Swarm", "build_swarm"]
+__all__ = ["LINK_FAULTS", "PROCESS_FAULTS", "Swarm", "build_swarm", "with_transport"]
 
 LINK_FAULTS = frozenset({"loss", "burst-loss", "delay", "duplicate", "corrupt", "outage"})
 PROCESS_FAULTS = frozenset({"crash", "pause", "slow"})
@@ -48,13 +48,17 @@ class Swarm:
     timed_faults: list[dict[str, Any]] = field(default_factory=list)
     process_faults: list[dict[str, Any]] = field(default_factory=list)
     telemetry: dict[str, Any] = field(default_factory=dict)
+    #: data-plane transport chosen for this run ("ipc" only when every agent is local)
+    transport: str = "tcp"
+    ipc_dir: str | None = None
 
     @property
     def n(self) -> int:
         return self.topology.n
 
-    def plan(self, agent: int, epoch: int, *, start_state: Any = None,
-             start_iteration: int = 0) -> dict[str, Any]:
+    def plan(
+        self, agent: int, epoch: int, *, start_state: Any = None, start_iteration: int = 0
+    ) -> dict[str, Any]:
         """Everything agent ``agent`` needs, as plain data for the control channel."""
         s = self.scenario
         top = self.topology
@@ -97,6 +101,8 @@ class Swarm:
             "telemetry": self.telemetry,
             "faults": self.armed_faults.get(agent, []),
             "bind_host": s.network.get("host", "127.0.0.1"),
+            "transport": self.transport,
+            "ipc_dir": self.ipc_dir,
             "modules": list(self.algorithm.get("modules", [])),
             "start_state": start_state,
             "start_iteration": start_iteration,
@@ -163,14 +169,26 @@ def _objective_spec(s: Scenario, agent: int) -> dict[str, Any]:
             curv = _random_spd(agent_generator(s.seed, agent, _CURVATURE), d, o["condition"])
         else:
             curv = np.eye(d)
-        return {"kind": "quadratic", "target": target.tolist(), "curvature": curv.tolist()}
+        return {
+            "kind": "quadratic",
+            "target": target.tolist(),
+            "curvature": curv.tolist(),
+            "agent": agent,
+        }
     if kind in ("logistic", "huber"):
-        from node import _objectives as objectives
+        # Draw the local data here so agents.json carries it and anyone can re-solve.
+        from node._objectives import objective_from_spec as build
 
-        make = objectives.logistic_data if kind == "logistic" else objectives.huber_data
-        return make(s.seed, agent, int(o["samples"]), d, **{
-            k: v for k, v in o.items() if k not in ("kind", "samples")
-        })
+        extra = {k: v for k, v in o.items() if k not in ("kind", "samples")}
+        spec = {
+            "kind": kind,
+            "seed": s.seed,
+            "agent": agent,
+            "samples": int(o["samples"]),
+            "dimension": d,
+            **extra,
+        }
+        return build(spec).spec()
     if kind == "custom":
         return {"kind": "custom", "function": o["function"], "dimension": d, "agent": agent}
     raise ScenarioError(f"{s.source}: [objective].kind: {kind!r} is not known")
@@ -207,15 +225,25 @@ def _faults(s: Scenario, top: topo.Topology) -> tuple[dict, list, list]:
         per_receiver: dict[int, list[int]] = {}
         for src, dst in links:
             per_receiver.setdefault(dst, []).append(src)
-        entries = {dst: {"fault": fault.to_wire(), "from": srcs} for dst, srcs in per_receiver.items()}
+        entries = {
+            dst: {"fault": fault.to_wire(), "from": srcs} for dst, srcs in per_receiver.items()
+        }
         if by_iteration or (start_s or 0.0) == 0.0:
             # Iteration windows are armed from the start so that rounds mode repeats exactly;
             # the node enforces the window on every message's iteration (or time).
             for dst, e in entries.items():
                 armed.setdefault(dst, []).append(e)
         else:
-            timed.append({"index": f["index"], "at_s": start_s, "until_s": end_s,
-                          "kind": f["kind"], "entries": entries, "links": links})
+            timed.append(
+                {
+                    "index": f["index"],
+                    "at_s": start_s,
+                    "until_s": end_s,
+                    "kind": f["kind"],
+                    "entries": entries,
+                    "links": links,
+                }
+            )
     return armed, timed, process
 
 
@@ -257,7 +285,7 @@ def build_swarm(s: Scenario) -> Swarm:
                 weights[i, j] = 1.0 / (len(ins) + 1)
     else:
         weights = topo.metropolis_weights(top)
-    params = {k: v for k, v in s.algorithm.items() if k not in ("name", "step", "modules")}
+    params = {k: v for k, v in s.algorithm.items() if k not in ("name", "step", "module")}
     if cls.uses_priorities:
         gain = pr.get("gain")
         bound = topo.laplacian_step_bound(top)
@@ -273,7 +301,7 @@ def build_swarm(s: Scenario) -> Swarm:
         "name": cls.name,
         "step": StepRule.from_spec(s.algorithm.get("step", 0.05)).spec(),
         "params": params,
-        "modules": list(s.algorithm.get("modules", [])),
+        "modules": [s.algorithm["module"]] if s.algorithm.get("module") else [],
     }
     ref = reference_optimum(objectives, intended)
     armed, timed, process = _faults(s, top)
@@ -302,3 +330,8 @@ def build_swarm(s: Scenario) -> Swarm:
         process_faults=process,
         telemetry=telemetry,
     )
+
+
+def with_transport(swarm: Swarm, transport: str, ipc_dir: str | None) -> Swarm:
+    """The same swarm with the data-plane transport fixed for one run."""
+    return replace(swarm, transport=transport, ipc_dir=ipc_dir)

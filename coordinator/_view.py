@@ -75,10 +75,27 @@ class LiveView:
                         deliv += row[1]
                         drop += row[2]
                         lost += row[5]
-            status = ("done" if a.finished else "dead" if a.dead else
-                      "running" if a.running else "joining")
-            rows.append((a.id, a.epoch, status, None if last is None else last[0],
-                         r.counters.get("sent", 0) if r else 0, deliv, drop, lost))
+            status = (
+                "done"
+                if a.finished
+                else "dead"
+                if a.dead
+                else "running"
+                if a.running
+                else "joining"
+            )
+            rows.append(
+                (
+                    a.id,
+                    a.epoch,
+                    status,
+                    None if last is None else last[0],
+                    r.counters.get("sent", 0) if r else 0,
+                    deliv,
+                    drop,
+                    lost,
+                )
+            )
         gap = None
         if xs:
             x_hat = np.mean(xs, axis=0)
@@ -86,8 +103,10 @@ class LiveView:
             self.gaps.append(gap)
         head = Text()
         head.append(f"{sw.scenario.name}", style="bold")
-        head.append(f"  {sw.algorithm['name']} · {sw.scenario.mode} · {sw.n} agents · "
-                    f"t = {coord.now_s():.2f} s")
+        head.append(
+            f"  {sw.algorithm['name']} · {sw.scenario.mode} · {sw.n} agents · "
+            f"t = {coord.now_s():.2f} s"
+        )
         if gap is not None:
             thr = sw.scenario.tolerance * max(abs(sw.reference.F_star), 1.0)
             head.append(f"\ngap {gap:.3e}  (tolerance {thr:.1e})  ", style="bold")
@@ -100,7 +119,9 @@ class LiveView:
             tab.add_row(*("-" if v is None else str(v) for v in row))
         parts: list[Any] = [head, tab]
         if coord.active_faults:
-            kinds = ", ".join(f"#{k} {v.get('kind', '?')}" for k, v in sorted(coord.active_faults.items()))
+            kinds = ", ".join(
+                f"#{k} {v.get('kind', '?')}" for k, v in sorted(coord.active_faults.items())
+            )
             parts.append(Text(f"faults armed/active: {kinds}", style="yellow"))
         return Panel(Group(*parts), title="swarmrig", border_style="blue")
 
@@ -120,9 +141,23 @@ def summary_table(summary: dict[str, Any]) -> Table:
         return str(v)
 
     m = summary["messages"]
-    for key in ("verdict", "exit", "algorithm", "mode", "agents", "final_gap",
-                "tolerance_threshold", "final_consensus_error", "time_to_tolerance_s",
-                "F_star", "x_star", "x_hat", "iterations_per_s", "startup_s", "wall_s"):
+    for key in (
+        "verdict",
+        "exit",
+        "algorithm",
+        "mode",
+        "agents",
+        "final_gap",
+        "tolerance_threshold",
+        "final_consensus_error",
+        "time_to_tolerance_s",
+        "F_star",
+        "x_star",
+        "x_hat",
+        "iterations_per_s",
+        "startup_s",
+        "wall_s",
+    ):
         t.add_row(key, fmt(summary.get(key)))
     t.add_row("messages", ", ".join(f"{k} {v}" for k, v in m.items()))
     for key in ("intended_priorities", "effective_priorities", "gap_to_effective"):
@@ -130,8 +165,10 @@ def summary_table(summary: dict[str, Any]) -> Table:
             t.add_row(key, fmt(summary[key]))
     if "baseline" in summary:
         b = summary["baseline"]
-        t.add_row("baseline (no faults)",
-                  f"gap {fmt(b.get('final_gap'))}, consensus {fmt(b.get('final_consensus_error'))},"
-                  f" time to tolerance {fmt(b.get('time_to_tolerance_s'))}")
+        t.add_row(
+            "baseline (no faults)",
+            f"gap {fmt(b.get('final_gap'))}, consensus {fmt(b.get('final_consensus_error'))},"
+            f" time to tolerance {fmt(b.get('time_to_tolerance_s'))}",
+        )
     t.add_row("run directory", summary["run_dir"])
     return t

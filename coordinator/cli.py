@@ -24,28 +24,48 @@ def _parser() -> argparse.ArgumentParser:
     r = sub.add_parser("run", help="run a scenario (or a built-in demo) and write a run directory")
     r.add_argument("scenario", nargs="?", help="scenario TOML file or demo name (default: demo)")
     r.add_argument("--out", type=Path, help="the run directory itself (default runs/<name>-<UTC>)")
-    r.add_argument("--runs-root", type=Path, default=Path("runs"),
-                   help="where default run directories go (default ./runs)")
+    r.add_argument(
+        "--runs-root",
+        type=Path,
+        default=Path("runs"),
+        help="where default run directories go (default ./runs)",
+    )
     r.add_argument("--quiet", action="store_true", help="no live view, no summary table")
     r.add_argument("--json", action="store_true", help="print summary.json on stdout")
-    r.add_argument("--baseline", action="store_true",
-                   help="also run the scenario without its faults and compare")
+    r.add_argument(
+        "--baseline",
+        action="store_true",
+        help="also run the scenario without its faults and compare",
+    )
     r.add_argument("--list-demos", action="store_true", help="list the built-in demos and exit")
-    r.add_argument("--listen", metavar="ENDPOINT",
-                   help="control endpoint to bind, e.g. tcp://0.0.0.0:5570 (agents on other "
-                   "machines join it)")
-    r.add_argument("--no-launch", action="store_true",
-                   help="start no agents here: wait for `swarmrig node` on other machines")
-    r.add_argument("--heartbeat-timeout", type=float, default=3.0,
-                   help="seconds without the coordinator before an agent exits (default 3)")
+    r.add_argument(
+        "--listen",
+        metavar="ENDPOINT",
+        help="control endpoint to bind, e.g. tcp://0.0.0.0:5570 (agents on other machines join it)",
+    )
+    r.add_argument(
+        "--no-launch",
+        action="store_true",
+        help="start no agents here: wait for `swarmrig node` on other machines",
+    )
+    r.add_argument(
+        "--heartbeat-timeout",
+        type=float,
+        default=3.0,
+        help="seconds without the coordinator before an agent exits (default 3)",
+    )
 
     c = sub.add_parser("check", help="validate a scenario, print it resolved; start nothing")
     c.add_argument("scenario")
     c.add_argument("--json", action="store_true")
 
     n = sub.add_parser("node", help="run one agent that joins a coordinator")
-    n.add_argument("--join", required=True, metavar="ENDPOINT",
-                   help="the coordinator's control endpoint, e.g. tcp://10.0.0.5:5570")
+    n.add_argument(
+        "--join",
+        required=True,
+        metavar="ENDPOINT",
+        help="the coordinator's control endpoint, e.g. tcp://10.0.0.5:5570",
+    )
     n.add_argument("--agent", required=True, type=int, metavar="ID")
     n.add_argument("--heartbeat-timeout", type=float, default=3.0)
 
@@ -83,9 +103,16 @@ def _cmd_run(args: argparse.Namespace) -> int:
     console = Console(stderr=True)
     view = None if args.quiet else LiveView(console)
     try:
-        result = run(swarm, out=args.out, runs_root=args.runs_root, view=view,
-                     baseline=args.baseline, launch_local=not args.no_launch,
-                     listen=args.listen, heartbeat_timeout=args.heartbeat_timeout)
+        result = run(
+            swarm,
+            out=args.out,
+            runs_root=args.runs_root,
+            view=view,
+            baseline=args.baseline,
+            launch_local=not args.no_launch,
+            listen=args.listen,
+            heartbeat_timeout=args.heartbeat_timeout,
+        )
     finally:
         if view is not None:
             view.close()
@@ -136,7 +163,8 @@ def _short(v: Any) -> str:
 
 
 def _cmd_node(args: argparse.Namespace) -> int:
-    from node._runtime import _set_parent_death_signal, main as node_main
+    from node._runtime import _set_parent_death_signal
+    from node._runtime import main as node_main
 
     _set_parent_death_signal()
     return node_main(args.join, args.agent, args.heartbeat_timeout)

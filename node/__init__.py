@@ -6,6 +6,7 @@ import os as _os
 for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     _os.environ.setdefault(_v, "1")
 
+from node import _gradient_tracking, _priority, _pushsum, _ratio  # noqa: E402, F401  (register)
 from node._algorithm import (  # noqa: E402
     AgentSpec,
     Algorithm,
@@ -17,27 +18,65 @@ from node._algorithm import (  # noqa: E402
     register_algorithm,
 )
 from node._dgd import DGD  # noqa: E402
-from node import _gradient_tracking, _priority, _pushsum, _ratio  # noqa: E402, F401  (register)
 from node._errors import AgentFailure, ObjectiveError, ProtocolError, WireError  # noqa: E402
+from node._links import (  # noqa: E402
+    DELIVER,
+    Decision,
+    LinkFault,
+    LinkModel,
+    corrupt_bytes,
+    validate_fault_params,
+)
 from node._memory import run_in_memory  # noqa: E402
-from node._objectives import Objective, Quadratic, objective_from_spec  # noqa: E402
+from node._objectives import (  # noqa: E402
+    Custom,
+    Huber,
+    Logistic,
+    Objective,
+    Quadratic,
+    huber_data,
+    logistic_data,
+    objective_from_spec,
+    objective_kinds,
+)
+from node._receiver import InLinkCounters, Receiver  # noqa: E402
+from node._wire import DataMessage, decode_control, decode_data, encode_control, encode_data  # noqa: E402
 
 __all__ = [
+    "DELIVER",
     "DGD",
     "AgentFailure",
     "AgentSpec",
     "Algorithm",
+    "Custom",
+    "DataMessage",
+    "Decision",
+    "Huber",
+    "InLinkCounters",
+    "LinkFault",
+    "LinkModel",
+    "Logistic",
     "Objective",
     "ObjectiveError",
     "Payload",
     "ProtocolError",
     "Quadratic",
     "Received",
+    "Receiver",
     "StepRule",
     "WireError",
     "algorithm_class",
     "algorithm_names",
+    "corrupt_bytes",
+    "decode_control",
+    "decode_data",
+    "encode_control",
+    "encode_data",
+    "huber_data",
+    "logistic_data",
     "objective_from_spec",
+    "objective_kinds",
     "register_algorithm",
     "run_in_memory",
+    "validate_fault_params",
 ]

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, ClassVar
+from typing import Any, ClassVar, NamedTuple
 
 import numpy as np
 
@@ -95,9 +95,12 @@ class AgentSpec:
     params: Mapping[str, Any] = field(default_factory=dict)
 
 
-@dataclass(frozen=True, slots=True)
-class Received:
-    """The latest message from one in-neighbour, as the algorithm sees it."""
+class Received(NamedTuple):
+    """The latest message from one in-neighbour, as the algorithm sees it.
+
+    A named tuple rather than a frozen dataclass: one is built per neighbour per step on
+    the hot path, and a tuple is three times cheaper to build while just as immutable.
+    """
 
     iteration: int
     payload: Mapping[str, np.ndarray]
@@ -142,6 +145,11 @@ class Algorithm:
             raise ObjectiveError(
                 f"agent {self.spec.id}: objective {self.spec.objective.kind!r} returned a"
                 f" gradient of shape {g.shape}; expected ({self.spec.dimension},)"
+            )
+        if not np.isfinite(g).all():
+            raise ObjectiveError(
+                f"agent {self.spec.id}: objective {self.spec.objective.kind!r} returned a"
+                f" non-finite gradient {g.tolist()} at x = {np.asarray(x).tolist()}"
             )
         return g
 

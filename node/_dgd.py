@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from node._algorithm import Algorithm, Payload, Received, register_algorithm
+from node._algorithm import AgentSpec, Algorithm, Payload, Received, register_algorithm
 
 __all__ = ["DGD", "DGDState"]
 
@@ -29,6 +29,12 @@ class DGDState:
 class DGD(Algorithm):
     name = "dgd"
 
+    def __init__(self, spec: AgentSpec) -> None:
+        super().__init__(spec)
+        self._reuse = spec.params.get("missing", "reuse") == "reuse"
+        self._w_self = spec.weights[spec.id]
+        self._rows = tuple((j, spec.weights[j]) for j in spec.in_neighbours)
+
     def payload_sizes(self) -> Mapping[str, int]:
         return {"x": self.spec.dimension}
 
@@ -36,17 +42,18 @@ class DGD(Algorithm):
         x = np.array(self.spec.initial_state, dtype=float)
         return DGDState(x=x), {"x": x}
 
-    def step(self, state: DGDState, inbox: Mapping[int, Received], k: int) -> tuple[DGDState, Payload]:
+    def step(
+        self, state: DGDState, inbox: Mapping[int, Received], k: int
+    ) -> tuple[DGDState, Payload]:
         spec = self.spec
-        reuse = spec.params.get("missing", "reuse") == "reuse"
-        w_self = spec.weights[spec.id]
-        mixed = w_self * state.x
-        for j in spec.in_neighbours:
-            w = spec.weights[j]
+        reuse = self._reuse
+        x = state.x
+        mixed = self._w_self * x
+        for j, w in self._rows:
             r = inbox.get(j)
-            if r is None or not (r.fresh or reuse):
-                mixed = mixed + w * state.x
+            if r is None or not (reuse or r.fresh):
+                mixed = mixed + w * x
             else:
                 mixed = mixed + w * r.payload["x"]
-        x = mixed - spec.step(k) * self.gradient(state.x)
+        x = mixed - spec.step(k) * self.gradient(x)
         return DGDState(x=x), {"x": x}

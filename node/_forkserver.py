@@ -17,13 +17,14 @@ and uses PR_SET_PDEATHSIG so that agents die with it and it dies with the coordi
 
 from __future__ import annotations
 
+import gc
 import json
 import os
 import select
 import signal
 import sys
 
-import node._runtime as runtime  # noqa: F401  (warm imports: numpy, zmq, msgpack)
+import node._runtime as runtime
 
 __all__ = ["serve"]
 
@@ -85,6 +86,10 @@ def serve(inp: int = 0, out: int = 1) -> None:
         os._exit(0)
 
     signal.signal(signal.SIGTERM, _kill_all)
+    # Keep the collector away from the warm heap: children would otherwise copy every page
+    # it touches (copy-on-write) and pay for traversing objects they never use.
+    gc.collect()
+    gc.freeze()
     _write(out, {"op": "group", "pgid": os.getpgid(0), "pid": os.getpid()})
     buf = b""
     while True:

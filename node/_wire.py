@@ -208,7 +208,7 @@ def decode_control(frame: bytes) -> dict[str, Any]:
         if key not in obj:
             raise WireError(f"control {kind!r} lacks key {key!r}")
         v = obj[key]
-        if not isinstance(v, typ) or isinstance(v, bool) and typ is not bool:
+        if not isinstance(v, typ) or (isinstance(v, bool) and typ is not bool):
             raise WireError(f"control {kind!r} key {key!r} has type {type(v).__name__}")
     extra = set(obj) - set(schema) - {"t"}
     if extra:

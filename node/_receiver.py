@@ -1,0 +1,337 @@
+"""The receiving side of one agent, sans IO: validation, accounting, fault models, inboxes.
+
+Both the agent process (:mod:`node._runtime`) and the in-process lockstep runner feed it
+the very same frames and read the very same inboxes, which is why a lockstep run and a
+multi-process rounds run with one seed agree exactly.
+
+Rules:
+
+* every data frame is counted exactly once per (in-link, sender epoch): delivered (made
+  visible to the algorithm), dropped by injection, rejected, or still held at stop; sequence
+  numbers never seen below the highest one seen are lost in transport;
+* a frame from an old epoch is refused, a replayed sequence number is refused;
+* in rounds mode a message of iteration k becomes visible at round k + lag, where lag counts
+  the whole round periods of its injected delay; in async mode at arrival + delay.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from node._algorithm import Received
+from node._errors import WireError
+from node._links import DELIVER, LinkFault, LinkModel, corrupt_bytes
+from node._rng import stream_key
+from node._wire import PROBE, decode_data, payload_arrays
+
+__all__ = ["COUNTER_FIELDS", "InLinkCounters", "Receiver"]
+
+
+@dataclass(slots=True)
+class InLinkCounters:
+    """What one agent saw on one in-link from one sender epoch (receiver side)."""
+
+    #: frames that decoded and came from this sender epoch (probes excluded)
+    received: int = 0
+    #: messages the algorithm was allowed to see (duplicates not included)
+    delivered: int = 0
+    #: dropped by an injected fault (loss, burst loss, outage)
+    dropped_injected: int = 0
+    #: refused: corrupted (checksum), malformed, replayed, or from an old epoch
+    rejected: int = 0
+    #: extra copies made by an injected duplicate fault
+    duplicated: int = 0
+    #: sequence numbers never seen below the highest one seen (transport loss)
+    lost_transport: int = 0
+    #: highest sequence number seen, -1 if none
+    max_seq: int = -1
+    #: accepted but still held by a delay fault (becomes in-flight at stop)
+    held: int = 0
+    #: first sequence number seen from this epoch (a restarted receiver starts late)
+    first_seq: int = 0
+    delays: list[float] = field(default_factory=list)
+
+    def as_list(self) -> list[Any]:
+        return [
+            self.received,
+            self.delivered,
+            self.dropped_injected,
+            self.rejected,
+            self.duplicated,
+            self.lost_transport,
+            self.max_seq,
+            self.held,
+            self.first_seq,
+        ]
+
+
+COUNTER_FIELDS = (
+    "received",
+    "delivered",
+    "dropped_injected",
+    "rejected",
+    "duplicated",
+    "lost_transport",
+    "max_seq",
+    "held",
+    "first_seq",
+)
+
+
+class _InLink:
+    __slots__ = (
+        "arrays",
+        "counters",
+        "epoch",
+        "fresh",
+        "heard",
+        "key",
+        "last_iter",
+        "last_release",
+        "latest",
+        "model",
+        "pending",
+        "src",
+        "stale",
+    )
+
+    def __init__(self, src: int, model: LinkModel, key: int) -> None:
+        self.src = src
+        self.model = model
+        self.key = key
+        self.epoch = -1  # unknown until the peer table says
+        self.counters: dict[int, InLinkCounters] = {}
+        self.heard = False
+        self.latest: Any = None  # (iteration, raw payload) of the newest visible message
+        self.arrays: dict[str, np.ndarray] | None = None
+        self.fresh = False
+        #: held messages: (release key, seq, iteration, raw payload, send_time)
+        self.pending: list[tuple[float, int, int, dict, float, bool, InLinkCounters]] = []
+        #: highest iteration of any message seen from the current epoch (dropped ones too)
+        self.last_iter = -1
+        self.last_release = 0.0
+        #: rounds mode: gave up waiting for this neighbour; not awaited until it speaks
+        self.stale = False
+
+    def cur(self) -> InLinkCounters:
+        c = self.counters.get(self.epoch)
+        if c is None:
+            c = self.counters[self.epoch] = InLinkCounters()
+        return c
+
+
+class Receiver:
+    """All in-links of one agent."""
+
+    def __init__(
+        self,
+        agent: int,
+        in_neighbours: Sequence[int],
+        sizes: Mapping[str, int],
+        *,
+        seed: int,
+        mode: str,
+        period_s: float,
+    ) -> None:
+        self.agent = agent
+        self.sizes = dict(sizes)
+        self.mode = mode
+        self.period = period_s
+        #: the run's start on this agent's clock (time windows of faults count from it)
+        self.start = 0.0
+        self.unattributed_rejected = 0
+        self.inlinks: dict[int, _InLink] = {
+            j: _InLink(j, LinkModel(seed, j, agent), stream_key(seed, j, agent, 7))
+            for j in in_neighbours
+        }
+
+    def add_fault(self, entry: Mapping[str, Any]) -> None:
+        """Arm a fault directive entry ``{"fault": wire dict, "from": [senders]}``."""
+        fault = LinkFault.from_wire(entry["fault"])
+        for src in entry["from"]:
+            link = self.inlinks.get(int(src))
+            if link is not None:
+                link.model.add(fault)
+
+    def remove_fault(self, index: int, senders: Sequence[int]) -> None:
+        for src in senders:
+            link = self.inlinks.get(int(src))
+            if link is not None:
+                link.model.remove(index)
+
+    def all_heard(self) -> bool:
+        return all(link.heard for link in self.inlinks.values())
+
+    def on_frame(self, frame: bytes, now: float) -> None:
+        """One data frame: validate, account, pass through the link model."""
+        try:
+            m = decode_data(frame, self.sizes)
+        except WireError:
+            self.unattributed_rejected += 1
+            return
+        link = self.inlinks.get(m.sender)
+        if link is None:
+            self.unattributed_rejected += 1
+            return
+        if m.kind == PROBE:
+            if m.epoch >= link.epoch:
+                link.heard = True
+            return
+        if m.epoch > link.epoch:  # a newer incarnation than the peer table said
+            link.epoch = m.epoch
+            link.last_iter = -1
+        c = link.counters.get(m.epoch)
+        if c is None:
+            c = link.counters[m.epoch] = InLinkCounters(first_seq=m.seq)
+        c.received += 1
+        if m.seq <= c.max_seq:  # replayed or reordered by the transport: refuse
+            c.rejected += 1
+            return
+        c.lost_transport += m.seq - c.max_seq - 1
+        c.max_seq = m.seq
+        if m.epoch < link.epoch:  # queued by an incarnation that is gone: refuse
+            c.rejected += 1
+            return
+        link.heard = True
+        link.stale = False
+        if m.iteration > link.last_iter:
+            link.last_iter = m.iteration
+        d = link.model.decide(m.seq, m.iteration, now - self.start)
+        if d is DELIVER:
+            self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, 0.0, False)
+            return
+        if not d.deliver:
+            c.dropped_injected += 1
+            return
+        if d.corrupt:
+            try:
+                decode_data(corrupt_bytes(frame, link.key, m.seq), self.sizes)
+            except WireError:
+                c.rejected += 1
+                return
+            # The checksum makes this unreachable; refuse anyway rather than trust it.
+            c.rejected += 1
+            return
+        self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, d.delay_s, d.fifo)
+        if d.copies > 1:
+            c.duplicated += d.copies - 1
+            for _ in range(d.copies - 1):
+                self.accept(
+                    link,
+                    c,
+                    m.seq,
+                    m.iteration,
+                    m.payload,
+                    m.send_time,
+                    now,
+                    d.delay_s,
+                    d.fifo,
+                    duplicate=True,
+                )
+
+    def accept(
+        self,
+        link: _InLink,
+        c: InLinkCounters,
+        seq: int,
+        iteration: int,
+        raw: dict,
+        send_time: float,
+        now: float,
+        delay_s: float,
+        fifo: bool,
+        duplicate: bool = False,
+    ) -> None:
+        if self.mode == "rounds":
+            # Delays count in rounds: a delay shorter than one round period arrives in time.
+            lag = int(delay_s / self.period) if delay_s > 0.0 else 0
+            key = float(iteration + lag)
+        else:
+            key = now + delay_s
+        if fifo and key < link.last_release:
+            key = link.last_release
+        link.last_release = max(link.last_release, key)
+        if self.mode == "async" and delay_s == 0.0 and not link.pending:
+            self.make_visible(link, c, iteration, raw, send_time, now, duplicate)
+            return
+        link.pending.append((key, seq, iteration, raw, send_time, duplicate, c))
+        if not duplicate:
+            c.held += 1
+
+    def make_visible(
+        self,
+        link: _InLink,
+        c: InLinkCounters,
+        iteration: int,
+        raw: dict,
+        send_time: float,
+        now: float,
+        duplicate: bool,
+    ) -> None:
+        link.latest = (iteration, raw)
+        link.arrays = None
+        link.fresh = True
+        if not duplicate:
+            c.delivered += 1
+            c.delays.append(now - send_time)
+
+    def release(self, bound: float, now: float) -> None:
+        """Make visible every held message whose release key is <= bound."""
+        for link in self.inlinks.values():
+            pending = link.pending
+            if not pending:
+                continue
+            if len(pending) == 1:  # the common case: this round's message, no delay
+                p = pending[0]
+                if p[0] > bound:
+                    continue
+                link.pending = []
+                ready = [p]
+            else:
+                ready = [p for p in pending if p[0] <= bound]
+                if not ready:
+                    continue
+                link.pending = [p for p in pending if p[0] > bound]
+                ready.sort(key=lambda p: (p[0], p[1]))
+            for _key, _seq, iteration, raw, send_time, dup, c in ready:
+                if not dup:
+                    c.held -= 1
+                self.make_visible(link, c, iteration, raw, send_time, now, dup)
+
+    def inbox(self) -> dict[int, Received]:
+        box = {}
+        for j, link in self.inlinks.items():
+            if link.latest is None:
+                continue
+            if link.arrays is None:
+                link.arrays = payload_arrays(link.latest[1])
+            box[j] = Received(link.latest[0], link.arrays, link.fresh)
+            link.fresh = False
+        return box
+
+    # -- telemetry ---------------------------------------------------------------------
+    def link_report(self, with_delays: bool = False) -> dict[int, Any]:
+        out: dict[int, Any] = {}
+        for j, link in self.inlinks.items():
+            per = {}
+            for ep, c in link.counters.items():
+                row: list[Any] = c.as_list()
+                if c.delays:
+                    d = np.asarray(c.delays) * 1000.0
+                    row += [float(np.median(d)), float(np.percentile(d, 95)), float(d.max())]
+                else:
+                    row += [None, None, None]
+                if with_delays:
+                    row.append(c.delays)
+                per[ep] = row
+            out[j] = per
+        return out
+
+    def neighbour_age(self, iteration: int) -> float:
+        """Mean age, in iterations, of the neighbour information used at the last step."""
+        ages = [iteration - link.latest[0] for link in self.inlinks.values() if link.latest]
+        return float(np.mean(ages)) if ages else 0.0
