@@ -24,9 +24,8 @@ import numpy as np
 
 from node._algorithm import Received
 from node._errors import WireError
-from node._links import DELIVER, LinkFault, LinkModel, corrupt_bytes
-from node._rng import stream_key
-from node._wire import PROBE, decode_data, payload_arrays
+from node._links import DELIVER, LinkFault, LinkModel
+from node._wire import PROBE, DataLayout
 
 __all__ = ["COUNTER_FIELDS", "InLinkCounters", "Receiver"]
 
@@ -89,7 +88,6 @@ class _InLink:
         "epoch",
         "fresh",
         "heard",
-        "key",
         "last_iter",
         "last_release",
         "latest",
@@ -99,10 +97,9 @@ class _InLink:
         "stale",
     )
 
-    def __init__(self, src: int, model: LinkModel, key: int) -> None:
+    def __init__(self, src: int, model: LinkModel) -> None:
         self.src = src
         self.model = model
-        self.key = key
         self.epoch = -1  # unknown until the peer table says
         self.counters: dict[int, InLinkCounters] = {}
         self.heard = False
@@ -139,14 +136,14 @@ class Receiver:
     ) -> None:
         self.agent = agent
         self.sizes = dict(sizes)
+        self.layout = DataLayout(self.sizes)
         self.mode = mode
         self.period = period_s
         #: the run's start on this agent's clock (time windows of faults count from it)
         self.start = 0.0
         self.unattributed_rejected = 0
         self.inlinks: dict[int, _InLink] = {
-            j: _InLink(j, LinkModel(seed, j, agent), stream_key(seed, j, agent, 7))
-            for j in in_neighbours
+            j: _InLink(j, LinkModel(seed, j, agent)) for j in in_neighbours
         }
 
     def add_fault(self, entry: Mapping[str, Any]) -> None:
@@ -169,64 +166,64 @@ class Receiver:
     def on_frame(self, frame: bytes, now: float) -> None:
         """One data frame: validate, account, pass through the link model."""
         try:
-            m = decode_data(frame, self.sizes)
+            kind, sender, epoch, seq, iteration, send_time, payload = self.layout.decode(frame)
         except WireError:
             self.unattributed_rejected += 1
             return
-        link = self.inlinks.get(m.sender)
+        link = self.inlinks.get(sender)
         if link is None:
             self.unattributed_rejected += 1
             return
-        if m.kind == PROBE:
-            if m.epoch >= link.epoch:
+        if kind == PROBE:
+            if epoch >= link.epoch:
                 link.heard = True
             return
-        if m.epoch > link.epoch:  # a newer incarnation than the peer table said
-            link.epoch = m.epoch
+        if epoch > link.epoch:  # a newer incarnation than the peer table said
+            link.epoch = epoch
             link.last_iter = -1
-        c = link.counters.get(m.epoch)
+        c = link.counters.get(epoch)
         if c is None:
-            c = link.counters[m.epoch] = InLinkCounters(first_seq=m.seq)
+            c = link.counters[epoch] = InLinkCounters(first_seq=seq)
         c.received += 1
-        if m.seq <= c.max_seq:  # replayed or reordered by the transport: refuse
+        if seq <= c.max_seq:  # replayed or reordered by the transport: refuse
             c.rejected += 1
             return
-        c.lost_transport += m.seq - c.max_seq - 1
-        c.max_seq = m.seq
-        if m.epoch < link.epoch:  # queued by an incarnation that is gone: refuse
+        c.lost_transport += seq - c.max_seq - 1
+        c.max_seq = seq
+        if epoch < link.epoch:  # queued by an incarnation that is gone: refuse
             c.rejected += 1
             return
         link.heard = True
         link.stale = False
-        if m.iteration > link.last_iter:
-            link.last_iter = m.iteration
-        d = link.model.decide(m.seq, m.iteration, now - self.start)
+        if iteration > link.last_iter:
+            link.last_iter = iteration
+        d = link.model.decide(seq, iteration, now - self.start)
         if d is DELIVER:
-            self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, 0.0, False)
+            self.accept(link, c, seq, iteration, payload, send_time, now, 0.0, False)
             return
         if not d.deliver:
             c.dropped_injected += 1
             return
         if d.corrupt:
             try:
-                decode_data(corrupt_bytes(frame, link.key, m.seq), self.sizes)
+                self.layout.decode(link.model.corrupt_frame(frame, seq))
             except WireError:
                 c.rejected += 1
                 return
             # The checksum makes this unreachable; refuse anyway rather than trust it.
             c.rejected += 1
             return
-        self.accept(link, c, m.seq, m.iteration, m.payload, m.send_time, now, d.delay_s, d.fifo)
+        self.accept(link, c, seq, iteration, payload, send_time, now, d.delay_s, d.fifo)
         if d.copies > 1:
             c.duplicated += d.copies - 1
             for _ in range(d.copies - 1):
                 self.accept(
                     link,
                     c,
-                    m.seq,
-                    m.iteration,
-                    m.payload,
-                    m.send_time,
+                    seq,
+                    iteration,
+                    payload,
+                    send_time,
                     now,
                     d.delay_s,
                     d.fifo,
@@ -297,10 +294,14 @@ class Receiver:
                     continue
                 link.pending = [p for p in pending if p[0] > bound]
                 ready.sort(key=lambda p: (p[0], p[1]))
-            for _key, _seq, iteration, raw, send_time, dup, c in ready:
+            rounds = self.mode == "rounds"
+            for key, _seq, iteration, raw, send_time, dup, c in ready:
                 if not dup:
                     c.held -= 1
-                self.make_visible(link, c, iteration, raw, send_time, now, dup)
+                # Async: the key is when the link delivered it (arrival plus injected delay);
+                # the receiver's own step grid is no part of the link's delay.
+                at = now if rounds else key
+                self.make_visible(link, c, iteration, raw, send_time, at, dup)
 
     def inbox(self) -> dict[int, Received]:
         box = {}
@@ -308,7 +309,7 @@ class Receiver:
             if link.latest is None:
                 continue
             if link.arrays is None:
-                link.arrays = payload_arrays(link.latest[1])
+                link.arrays = self.layout.arrays(link.latest[1])
             box[j] = Received(link.latest[0], link.arrays, link.fresh)
             link.fresh = False
         return box

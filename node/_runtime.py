@@ -33,7 +33,7 @@ from node._lifecycle import Lifecycle, Phase
 from node._objectives import objective_from_spec
 from node._receiver import Receiver
 from node._rng import agent_generator
-from node._wire import decode_control, encode_control, encode_data, encode_probe
+from node._wire import decode_control, encode_control, encode_probe
 
 __all__ = ["Node", "main", "spec_from_plan"]
 
@@ -265,7 +265,9 @@ class Node:
     # -- data plane --------------------------------------------------------------------
     def publish(self, payload: Mapping[str, np.ndarray], iteration: int) -> None:
         assert self.pub is not None
-        frame = encode_data(self.agent, self.epoch, self.seq, iteration, self.clock(), payload)
+        frame = self.rx.layout.encode(
+            self.agent, self.epoch, self.seq, iteration, self.clock(), payload
+        )
         self.seq += 1
         self.sent += 1
         try:
