@@ -35,11 +35,29 @@ from node._receiver import Receiver
 from node._rng import agent_generator
 from node._wire import decode_control, encode_control, encode_probe
 
-__all__ = ["Node", "main", "spec_from_plan"]
+__all__ = ["BATCH_LIMIT", "Node", "main", "receive_batch", "spec_from_plan"]
 
 VERSION = "0.1.0"
 #: an estimate beyond this (or not finite) means the run diverged
 DIVERGED = 1e12
+
+
+#: frames taken off the data socket before they are handled as one batch
+BATCH_LIMIT = 4096
+
+
+def receive_batch(sub: zmq.Socket, rx: Receiver, now: float, limit: int = BATCH_LIMIT) -> int:
+    """Take what is queued on ``sub`` (up to ``limit`` frames) and hand it to ``rx``."""
+    frames: list[bytes] = []
+    recv = sub.recv
+    try:
+        while len(frames) < limit:
+            frames.append(recv(zmq.NOBLOCK))
+    except zmq.Again:
+        pass
+    if frames:
+        rx.on_frames(frames, now)
+    return len(frames)
 
 
 def spec_from_plan(plan: Mapping[str, Any]) -> AgentSpec:
@@ -252,8 +270,7 @@ class Node:
             if link is None:
                 continue
             endpoint, epoch = str(entry[0]), int(entry[1])
-            if epoch > link.epoch:
-                link.epoch = epoch
+            link.set_epoch(epoch)
             old = self.connected.get(j)
             if old != endpoint:
                 if old is not None:
@@ -276,15 +293,9 @@ class Node:
             pass
 
     def drain(self, now: float) -> int:
-        """Handle every frame already queued on the data socket."""
+        """Handle every frame already queued on the data socket (in batches)."""
         assert self.sub is not None
-        n = 0
-        sub = self.sub
-        poll = self._sub_poller.poll
-        while poll(0):
-            self.rx.on_frame(sub.recv(zmq.NOBLOCK), now)
-            n += 1
-        return n
+        return receive_batch(self.sub, self.rx, now)
 
     def counters(self) -> dict[str, Any]:
         return {

@@ -28,6 +28,7 @@ from node._errors import WireError
 
 __all__ = [
     "CONTROL_SCHEMA",
+    "CRC_RESIDUE",
     "DATA",
     "MAX_CONTROL_FRAME",
     "MAX_DATA_FRAME",
@@ -53,7 +54,7 @@ _F64 = np.dtype("<f8")
 _U32 = struct.Struct("<I")
 _crc32 = zlib.crc32
 #: CRC-32 of any message followed by its own little-endian CRC-32 (a property of the code)
-_CRC_RESIDUE = 0x2144DF1C
+CRC_RESIDUE = _CRC_RESIDUE = 0x2144DF1C
 _new_message = tuple.__new__
 _unpackb = msgpack.unpackb
 
@@ -186,7 +187,17 @@ class DataLayout:
     frame itself (fast layout) or a dict of bytes; :meth:`arrays` reads either.
     """
 
-    __slots__ = ("_map", "_parts", "keys", "length", "sizes")
+    __slots__ = (
+        "_first",
+        "_head",
+        "_map",
+        "_parts",
+        "dtype",
+        "keys",
+        "length",
+        "sizes",
+        "skeleton",
+    )
 
     def __init__(self, sizes: Mapping[str, int]) -> None:
         self.keys = tuple(sorted(sizes))
@@ -203,6 +214,35 @@ class DataLayout:
             pos += len(hdr) + 8 * self.sizes[k]
         self._parts = tuple(parts)
         self.length = pos + 4
+        # header, map marker and the first key's header in one struct call
+        self._first = self._map + (parts[0][1] if parts else b"")
+        self._head = struct.Struct(_HEADER.format + f"{len(self._first)}s")
+        # For batches: the header fields as a numpy record, and every fixed byte of the
+        # layout (msgpack markers, map and key headers) with its position.
+        self.dtype = np.dtype(
+            {
+                "names": ["kind", "sender", "epoch", "seq", "iteration", "send_time"],
+                "formats": ["u1", ">u4", ">u4", ">u8", ">u8", ">f8"],
+                "offsets": [1, 3, 8, 13, 22, 31],
+                "itemsize": self.length,
+            }
+        )
+        fixed = {
+            0: _FIXARRAY7,
+            2: _UINT32,
+            7: _UINT32,
+            12: _UINT64,
+            21: _UINT64,
+            30: _FLOAT64,
+            _HEADER.size: self._map[0],
+        }
+        for _, hdr, at, _, _ in self._parts:
+            for i, b in enumerate(hdr):
+                fixed[at + i] = b
+        self.skeleton = (
+            np.fromiter(fixed.keys(), dtype=np.intp),
+            np.fromiter(fixed.values(), dtype=np.uint8),
+        )
 
     def encode(
         self,
@@ -213,10 +253,10 @@ class DataLayout:
         send_time: float,
         payload: Mapping[str, np.ndarray],
     ) -> bytes:
-        if not (0 <= sender < 1 << 32 and 0 <= epoch < 1 << 32 and seq >= 0 and iteration >= 0):
-            raise WireError(f"header out of range: sender {sender}, epoch {epoch}, seq {seq}")
-        chunks = [
-            _HEADER.pack(
+        parts = self._parts
+        try:
+            # struct refuses negative or too large header values by itself
+            head = self._head.pack(
                 _FIXARRAY7,
                 DATA,
                 _UINT32,
@@ -229,14 +269,27 @@ class DataLayout:
                 iteration,
                 _FLOAT64,
                 send_time,
-            ),
-            self._map,
-        ]
-        for k, hdr, _, _, size in self._parts:
+                self._first,
+            )
+        except struct.error:
+            raise WireError(
+                f"header out of range: sender {sender}, epoch {epoch}, seq {seq},"
+                f" iteration {iteration}"
+            ) from None
+        if len(parts) == 1:  # the common case: one array
+            k, _, _, _, size = parts[0]
             v = payload[k]
-            if v.dtype != _F64 or v.shape != (size,):
+            if v.dtype is not _F64 or v.size != size:
                 v = np.ascontiguousarray(v, dtype=_F64).reshape(size)
-            chunks.append(hdr)
+            body = head + v.tobytes()
+            return body + _U32.pack(_crc32(body))
+        chunks = [head]
+        for i, (k, hdr, _, _, size) in enumerate(parts):
+            v = payload[k]
+            if v.dtype is not _F64 or v.size != size:
+                v = np.ascontiguousarray(v, dtype=_F64).reshape(size)
+            if i:
+                chunks.append(hdr)
             chunks.append(v.tobytes())
         body = b"".join(chunks)
         return body + _U32.pack(_crc32(body))

@@ -1,0 +1,243 @@
+"""``swarmrig bench``: what this machine can hold, measured now.
+
+Every figure is measured in this call: spawn time (until every agent is ready), rounds-mode
+swarm iterations per second (agent iterations of the whole swarm per second of run phase),
+and the node's message path (encode -> PUB -> SUB -> decode, validate, account, fault
+decision) next to raw pyzmq moving the same bytes between two processes.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zmq
+
+__all__ = ["bench", "message_path", "print_bench", "rounds_rate", "spawn_time"]
+
+
+def _scenario(n: int, mode: str = "rounds", iterations: int = 1, shape: str = "ring") -> dict:
+    return {
+        "swarm": {
+            "name": f"bench-{shape}-{n}",
+            "agents": n,
+            "dimension": 2,
+            "seed": 1,
+            "mode": mode,
+            "iterations": iterations,
+        },
+        "topology": {"shape": shape},
+        "objective": {"kind": "quadratic"},
+        "algorithm": {"name": "dgd", "step": 0.1},
+        "telemetry": {"every_iterations": max(1, iterations // 20)},
+    }
+
+
+def _run(scenario: dict) -> dict[str, Any]:
+    from coordinator._api import run
+
+    root = Path(tempfile.mkdtemp(prefix="swarmrig-bench-"))
+    try:
+        res = run(scenario, out=root / "run")
+        out = dict(res.summary)
+        out["handshake_s"] = json.loads((root / "run" / "run.json").read_text()).get("handshake_s")
+        if res.exit_code != 0:
+            raise RuntimeError(f"bench run failed: {res.summary['exit']}")
+        return out
+    finally:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+def spawn_time(n: int) -> float:
+    """Seconds from the start of the launch until all ``n`` agents reported ready."""
+    return float(_run(_scenario(n, iterations=1, shape="ring"))["handshake_s"])
+
+
+def rounds_rate(n: int, iterations: int) -> float:
+    """Rounds mode on a ring of ``n``: agent iterations per second of the run phase."""
+    return float(_run(_scenario(n, iterations=iterations))["iterations_per_s"])
+
+
+def _sender(
+    endpoint: str, ctl_endpoint: str, frames: list[bytes] | None, count: int, encode: bool
+) -> None:
+    from node._wire import DataLayout
+
+    encode_data = DataLayout({"x": 2}).encode
+    ctx = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.setsockopt(zmq.SNDHWM, 0)
+    pub.setsockopt(zmq.LINGER, -1)
+    pub.bind(endpoint)
+    ctl = ctx.socket(zmq.PAIR)
+    ctl.connect(ctl_endpoint)
+    ctl.recv()  # the receiver is subscribed
+    x = np.zeros(2)
+    payload = {"x": x}
+    send = pub.send
+    if encode:
+        clock = time.monotonic
+        for seq in range(count):
+            send(encode_data(0, 0, seq, seq, clock(), payload))
+    else:
+        assert frames is not None
+        frame = frames[0]
+        for _ in range(count):
+            send(frame)
+    ctl.recv()  # the receiver has everything
+    pub.close()
+    ctl.close()
+    ctx.term()
+
+
+def message_path(
+    count: int, *, node_path: bool, fault: dict | None = None, transport: str = "ipc"
+) -> dict[str, Any]:
+    """Move ``count`` messages one way between two processes; messages per second received.
+
+    ``node_path``: the sender encodes each message as an agent does and the receiver runs
+    every frame through the agent's Receiver (decode, validate, account, fault decision);
+    otherwise both sides move the same pre-encoded bytes with plain pyzmq calls.
+    """
+    from node._receiver import Receiver
+    from node._wire import encode_data
+
+    tmp = tempfile.mkdtemp(prefix="swarmrig-msg-")
+    if transport == "ipc":
+        endpoint = f"ipc://{tmp}/p"
+    else:
+        import socket
+
+        with socket.socket() as probe:
+            probe.bind(("127.0.0.1", 0))
+            endpoint = f"tcp://127.0.0.1:{probe.getsockname()[1]}"
+    frame = encode_data(0, 0, 0, 0, 0.0, {"x": np.zeros(2)})
+    pid = os.fork()
+    if pid == 0:  # the child never touches the parent's contexts
+        code = 0
+        try:
+            _sender(endpoint, f"ipc://{tmp}/ctl", [frame], count, node_path)
+        except BaseException:
+            code = 1
+        os._exit(code)
+    ctx = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.RCVHWM, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    ctl = ctx.socket(zmq.PAIR)
+    ctl.bind(f"ipc://{tmp}/ctl")
+    sub.connect(endpoint)
+    rx = Receiver(1, [0], {"x": 2}, seed=1, mode="async", period_s=0.001)
+    rx.inlinks[0].set_epoch(0)
+    if fault is not None:
+        rx.add_fault({"fault": fault, "from": [0]})
+    time.sleep(0.3)  # subscription established (slow joiner)
+    ctl.send(b"go")
+    recv = sub.recv
+    first = recv()
+    t0 = time.perf_counter()
+    if node_path:
+        # exactly what an agent does with its data socket: batches through its Receiver
+        from node._runtime import receive_batch
+
+        rx.on_frame(first, 0.0)
+        got = 1
+        poller = zmq.Poller()
+        poller.register(sub, zmq.POLLIN)
+        while got < count:
+            n = receive_batch(sub, rx, 0.0)
+            if n == 0:
+                poller.poll(100)
+            got += n
+    else:
+        for _ in range(count - 1):
+            recv()
+    dt = time.perf_counter() - t0
+    ctl.send(b"done")
+    os.waitpid(pid, 0)
+    sub.close()
+    ctl.close()
+    ctx.term()
+    shutil.rmtree(tmp, ignore_errors=True)
+    out: dict[str, Any] = {"messages": count, "msgs_per_s": (count - 1) / dt}
+    if node_path:
+        c = rx.inlinks[0].counters[0]
+        out.update(
+            delivered=c.delivered,
+            dropped_injected=c.dropped_injected,
+            lost_transport=c.lost_transport,
+            rejected=c.rejected,
+            held=c.held,
+            max_seq=c.max_seq,
+        )
+    return out
+
+
+def bench(quick: bool = False) -> dict[str, Any]:
+    """Every figure of ``swarmrig bench`` (``quick``: smaller sizes, for a smoke test)."""
+    sizes = (8, 16) if quick else (32, 64, 128)
+    rounds = 300 if quick else 4000
+    count = 50_000 if quick else 1_000_000
+    spawn = {n: spawn_time(n) for n in sizes}
+    rates = {n: rounds_rate(n, rounds) for n in (8, 32)}
+    raw = message_path(count, node_path=False)
+    node = message_path(count, node_path=True)
+    loss = {
+        "index": 0,
+        "kind": "loss",
+        "params": {"rate": 0.01},
+        "start_s": None,
+        "end_s": None,
+        "start_iteration": None,
+        "end_iteration": None,
+    }
+    faulty = message_path(count, node_path=True, fault=loss)
+    per_msg_us = (1.0 / faulty["msgs_per_s"] - 1.0 / node["msgs_per_s"]) * 1e6
+    return {
+        "spawn_s": spawn,
+        "rounds_iterations_per_s": rates,
+        "rounds_iterations": rounds,
+        "message_path_msgs_per_s": node["msgs_per_s"],
+        "raw_zmq_msgs_per_s": raw["msgs_per_s"],
+        "message_path_ratio": node["msgs_per_s"] / raw["msgs_per_s"],
+        "message_path": node,
+        "fault_layer": {
+            "fault": "loss rate 0.01 on the link",
+            **faulty,
+            "extra_us_per_message": per_msg_us,
+        },
+        "cpus": os.cpu_count(),
+    }
+
+
+def print_bench(res: dict[str, Any]) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    t = Table(title="swarmrig bench", show_header=True)
+    t.add_column("measure")
+    t.add_column("value", justify="right")
+    for n, s in res["spawn_s"].items():
+        t.add_row(f"spawn {n} agents until all ready", f"{s:.2f} s")
+    for n, r in res["rounds_iterations_per_s"].items():
+        t.add_row(
+            f"rounds mode, ring of {n} ({res['rounds_iterations']} rounds)",
+            f"{r:,.0f} swarm iterations/s",
+        )
+    t.add_row("raw pyzmq, one way", f"{res['raw_zmq_msgs_per_s']:,.0f} msg/s")
+    t.add_row("node message path, one way", f"{res['message_path_msgs_per_s']:,.0f} msg/s")
+    t.add_row("  ratio to raw", f"{res['message_path_ratio']:.2f}")
+    mp = res["message_path"]
+    t.add_row("  messages / lost in transport", f"{mp['messages']:,} / {mp['lost_transport']}")
+    fl = res["fault_layer"]
+    t.add_row(
+        "with a 1% loss fault",
+        f"{fl['msgs_per_s']:,.0f} msg/s (+{fl['extra_us_per_message']:.2f} µs per message)",
+    )
+    Console().print(t)
