@@ -307,6 +307,7 @@ class Receiver:
                 or link.pending
                 or link.model.faults
                 or not ok[idx].all()
+                or not np.isfinite(rows["send_time"]).all()
                 or (rows["epoch"] != link.epoch).any()
                 or int(seqs[0]) != c.max_seq + 1
                 or (len(seqs) > 1 and (np.diff(seqs) != 1).any())

@@ -127,6 +127,8 @@ def decode_data(frame: bytes, sizes: Mapping[str, int]) -> DataMessage:
     if type(obj) is not list or len(obj) != 7:
         raise WireError("data frame is not a 7-element array")
     kind, sender, epoch, seq, iteration, send_time, raw = obj
+    if type(kind) is not int:
+        raise WireError(f"data frame kind {kind!r} out of range; expected 0 (data) or 1 (probe)")
     if (
         type(sender) is not int
         or type(epoch) is not int
@@ -136,6 +138,8 @@ def decode_data(frame: bytes, sizes: Mapping[str, int]) -> DataMessage:
         or type(raw) is not dict
     ):
         raise WireError("data frame header has wrong types")
+    if send_time - send_time != 0.0:  # NaN or infinite
+        raise WireError(f"data frame send time {send_time} is not finite")
     if kind == DATA and seq >= 0 and iteration >= 0 and epoch >= 0 and len(raw) == len(sizes):
         for key, size in sizes.items():
             b = raw.get(key)
@@ -306,6 +310,7 @@ class DataLayout:
                 and h[8] == _UINT64
                 and h[10] == _FLOAT64
                 and h[1] == DATA
+                and h[11] - h[11] == 0.0  # finite send time
                 and frame[_HEADER.size] == self._map[0]
             ):
                 for _, hdr, at, _, _ in self._parts:
@@ -367,6 +372,31 @@ def _default(obj: Any) -> Any:
     raise TypeError(f"cannot encode {type(obj).__name__}")
 
 
+_PLAIN = (type(None), bool, int, float, str, bytes)
+
+
+def _plain(obj: Any, depth: int) -> None:
+    """Refuse anything but plain msgpack data (Timestamp objects slip past ext_hook)."""
+    if depth > 32:
+        raise WireError("control frame nests deeper than 32 levels")
+    t = type(obj)
+    if t in _PLAIN:
+        return
+    if t is list:
+        for v in obj:
+            if type(v) not in _PLAIN:
+                _plain(v, depth + 1)
+        return
+    if t is dict:
+        for k, v in obj.items():
+            if type(k) not in _PLAIN:
+                raise WireError(f"control frame has a map key of type {type(k).__name__}")
+            if type(v) not in _PLAIN:
+                _plain(v, depth + 1)
+        return
+    raise WireError(f"control frame carries a {t.__name__}, not plain data")
+
+
 def decode_control(frame: bytes) -> dict[str, Any]:
     """Decode and validate one control frame against :data:`CONTROL_SCHEMA`."""
     n = len(frame)
@@ -380,6 +410,7 @@ def decode_control(frame: bytes) -> dict[str, Any]:
         raise WireError(f"control frame does not decode: {type(exc).__name__}: {exc}") from None
     if type(obj) is not dict:
         raise WireError("control frame is not a map")
+    _plain(obj, 0)
     kind = obj.get("t")
     schema = CONTROL_SCHEMA.get(kind) if isinstance(kind, str) else None
     if schema is None:
