@@ -1,0 +1,405 @@
+"""The lockstep engine: a rounds-mode run inside one process, on a virtual clock.
+
+It runs the very same agent core as the multi-process rounds mode, so that a lockstep run
+and a multi-process run with one seed end in the same state for every agent (bitwise where
+no time window is involved) and write the same run directory, only much faster:
+
+* each agent gets ``Swarm.plan(agent, 0)`` through the control codec and builds from it what
+  :meth:`node._runtime.Node.setup` builds (``spec_from_plan``, the registered algorithm, a
+  :class:`~node._receiver.Receiver` with the plan's link faults), minus the sockets;
+* round k, in the order of :meth:`node._runtime.Node.rounds`: every agent publishes its
+  payload for iteration k as a real frame (``encode_data(agent, 0, seq, k, now, payload)``,
+  seq counting from 0 per agent); every frame goes to each out-neighbour's
+  ``Receiver.on_frame(frame, now)``, whose link models make the same pure decisions as in an
+  agent process; then each agent does ``rx.release(float(k), now)`` and
+  ``algorithm.step(state, rx.inbox(), k)``, checks divergence and samples as ``Node`` does;
+* telemetry, final reports, fault directives and their acknowledgements go through the
+  control codec into the unchanged :class:`~coordinator._run.Coordinator` handlers, so
+  metrics.csv, links.csv and summary.json come out of the same code as for a real run.
+
+Virtual time: round k happens at ``now = k * period_s`` (``[timing].period_ms``), from 0.
+Sample times, events, ``time_to_tolerance_s`` and time windows of faults all count on that
+clock, which makes time-windowed faults deterministic here. A multi-process rounds run goes
+as fast as its sockets allow and tests time windows against real seconds, so only faults
+without a time window (or with an iteration window) repeat exactly across the two engines.
+A delay still counts in whole rounds (``int(delay_s / period_s)``), as in an agent process.
+A ``seconds`` budget runs the rounds with ``k * period_s < seconds``. ``wall_s``,
+``startup_s``, ``run_s`` and ``iterations_per_s`` stay real (this process's own speed).
+
+What it cannot model is refused before anything is written (:func:`check_lockstep`): async
+mode and process faults (crash, pause, slow).
+"""
+
+from __future__ import annotations
+
+import getpass
+import math
+import os
+import platform
+import socket
+import time
+from collections.abc import Callable, Mapping
+from typing import Any
+
+import numpy as np
+import zmq
+
+from coordinator._metrics import AgentRecord
+from coordinator._run import VERSION, Coordinator, RunFailed, RunOptions, RunResult, _Agent, _Stop
+from coordinator._swarm import LINK_FAULTS, PROCESS_FAULTS, Swarm
+from node._algorithm import Algorithm, algorithm_class
+from node._lifecycle import Lifecycle, Phase
+from node._receiver import Receiver
+from node._rng import agent_generator
+from node._runtime import Node, _Diverged, _import_modules, spec_from_plan
+from node._wire import encode_control
+from topologies._errors import ScenarioError
+
+__all__ = ["ROUNDS_PER_FLUSH", "LockstepCoordinator", "check_lockstep", "execute_lockstep"]
+
+#: telemetry is flushed, and the live view called, every this many rounds
+ROUNDS_PER_FLUSH = 200
+
+
+def check_lockstep(swarm: Swarm) -> None:
+    """Raise ScenarioError, naming the key, if the lockstep engine cannot run ``swarm``.
+
+    It runs rounds mode with link faults of every kind; async mode and process faults
+    (crash, pause, slow) need real processes.
+    """
+    s = swarm.scenario
+    if s.mode != "rounds":
+        raise ScenarioError(
+            f"{s.source}: [swarm].mode: the lockstep engine runs rounds mode only, got"
+            f' {s.mode!r}; run it with the "processes" engine'
+        )
+    for f in s.faults:
+        if f["kind"] in PROCESS_FAULTS:
+            raise ScenarioError(
+                f"{s.source}: fault[{f['index']}].kind: {f['kind']!r} is a process fault, which"
+                f" the lockstep engine cannot model; expected a link fault"
+                f' ({", ".join(sorted(LINK_FAULTS))}) or the "processes" engine'
+            )
+
+
+def _round_limit(iterations: int | None, seconds: float | None, period_s: float) -> int:
+    """Rounds to run: the iteration budget, or the rounds k with k * period_s < seconds."""
+    limits = []
+    if iterations is not None:
+        limits.append(int(iterations))
+    if seconds is not None:
+        limits.append(max(0, math.ceil(float(seconds) / period_s)))
+        # ceil of a rounded quotient can be one off; settle on the definition itself
+        while limits[-1] > 0 and (limits[-1] - 1) * period_s >= seconds:
+            limits[-1] -= 1
+        while limits[-1] * period_s < seconds:
+            limits[-1] += 1
+    if not limits:
+        raise RunFailed("the scenario gives neither [swarm].iterations nor [swarm].seconds")
+    return min(limits)
+
+
+class _Member(Node):
+    """One agent of a lockstep run: the node core without sockets.
+
+    ``Node``'s own ``handle_ctl``, ``apply_directive``, ``initial``, ``sample``,
+    ``counters``, ``flush``, ``finish`` and ``check_state`` run unchanged; the control
+    channel is a call into the coordinator (``deliver``) and the clock is the run's virtual
+    clock.
+    """
+
+    def __init__(self, agent: int, deliver: Callable[[int, bytes], None], clock: Any) -> None:
+        # Not Node.__init__: it opens a ZeroMQ context and a control socket.
+        self.join = "lockstep"
+        self.agent = agent
+        self.clock = clock
+        self.heartbeat_timeout = math.inf
+        self.life = Lifecycle()
+        self.ctx = self.ctl = self.pub = self.sub = None  # type: ignore[assignment]
+        self.last_ctl = clock()
+        self.epoch = 0
+        self.refused_control = 0
+        self.telemetry_dropped = 0
+        self.sent = 0
+        self.seq = 0
+        self.iteration = 0
+        self.samples: list[list[Any]] = []
+        self.stop_reason: str | None = None
+        self.slow_factor = 1.0
+        self.start_node = 0.0
+        self.directives_pending: list[dict[str, Any]] = []
+        self._deliver = deliver
+        #: the run is over for this agent (final report sent, or failed)
+        self.done = False
+        self.failed = False
+        self.state: Any = None
+        self.out: dict[str, Any] = {}
+        self._next_sample = 0.0
+
+    def setup(self, plan: Mapping[str, Any]) -> None:
+        """What Node.setup builds from a plan, without the data sockets."""
+        _import_modules(list(plan.get("modules", [])))
+        self.plan = plan
+        self.epoch = int(plan["epoch"])
+        self.spec = spec_from_plan(plan)
+        self.algorithm: Algorithm = algorithm_class(plan["algorithm"]["name"])(self.spec)
+        self.sizes = dict(self.algorithm.payload_sizes())
+        self.mode = plan["mode"]
+        self.iterations = plan.get("iterations")
+        self.seconds = plan.get("seconds")
+        t = plan["timing"]
+        self.period = float(t["period_ms"]) / 1000.0
+        self.jitter = float(t["jitter"])
+        self.speed = float(t.get("speed", 1.0))
+        self.round_timeout = float(t["round_timeout_ms"]) / 1000.0
+        tel = plan["telemetry"]
+        self.every_iterations = int(tel["every_iterations"])
+        self.every_s = float(tel["every_ms"]) / 1000.0
+        self.batch_s = float(tel.get("batch_ms", 50.0)) / 1000.0
+        self.keep_delays = bool(tel.get("delay_samples", False))
+        self.rng = agent_generator(int(plan["seed"]), self.agent, purpose=1)
+        self.rx = Receiver(
+            self.agent,
+            self.spec.in_neighbours,
+            self.sizes,
+            seed=int(plan["seed"]),
+            mode=self.mode,
+            period_s=self.period,
+        )
+        self.inlinks = self.rx.inlinks
+        for entry in plan.get("faults", []):
+            self.rx.add_fault(entry)
+
+    def send_ctl(self, kind: str, **fields: Any) -> bool:
+        self._deliver(self.agent, encode_control(kind, **fields))
+        return True
+
+
+class _Fanout:
+    """Stands in for an agent's PUB socket: hands each frame to every out-neighbour's
+    receiver at once, at the current round's virtual time (no queue, so no transport loss)."""
+
+    __slots__ = ("coord", "receivers")
+
+    def __init__(self, coord: LockstepCoordinator, receivers: list[Callable[..., None]]) -> None:
+        self.coord = coord
+        self.receivers = receivers
+
+    def send(self, frame: bytes, flags: int = 0) -> None:
+        now = self.coord.vnow
+        for on_frame in self.receivers:
+            on_frame(frame, now)
+
+
+class LockstepCoordinator(Coordinator):
+    """The coordinator with its launch, handshake and run phase replaced by the in-process
+    lockstep loop; results, run directory, view and signal handling are the base class's."""
+
+    def __init__(self, swarm: Swarm, options: RunOptions) -> None:
+        check_lockstep(swarm)
+        if options.listen is not None or not options.launch_local:
+            raise RunFailed(
+                "RunOptions.listen / launch_local: the lockstep engine runs every agent inside"
+                " this process; it cannot wait for agents on other machines"
+            )
+        super().__init__(swarm, options)
+        self.period_s = float(self.s.timing["period_ms"]) / 1000.0
+        self.members: list[_Member] = []
+        self._idents: list[bytes] = []
+        #: virtual time of the current round, seconds
+        self.vnow = 0.0
+
+    # -- virtual time ------------------------------------------------------------------
+    def now_s(self) -> float:
+        return self.vnow
+
+    def virtual_clock(self) -> float:
+        """The agents' clock: the current round's virtual time."""
+        return self.vnow
+
+    # -- control channel, both ways, through the codec ---------------------------------
+    def send(self, agent: _Agent, kind: str, **fields: Any) -> None:
+        """Coordinator -> agent: the frame an agent process would receive, handled by the
+        node's own ``handle_ctl``; plan and go are acted on as ``Node.handshake`` does."""
+        if agent.id >= len(self.members):
+            return
+        m = self.members[agent.id]
+        if m.done and kind != "stop":
+            return
+        msg = m.handle_ctl(encode_control(kind, **fields))
+        if msg is None:
+            return
+        if msg["t"] == "plan":
+            m.setup(msg["plan"])
+        elif msg["t"] == "go":
+            m.start_node = float(msg["start_node"])
+            m.rx.start = m.start_node
+            m.iteration = int(msg["iteration"])
+
+    def from_agent(self, agent: int, frame: bytes) -> None:
+        """Agent -> coordinator: the base class's handler, on the agents' clock.
+
+        The agents' times are virtual and start at 0, so there is no run start to subtract
+        (the base class subtracts ``t_go``, which here is the real start of the loop).
+        """
+        t_go, self.t_go = self.t_go, None
+        try:
+            self.on_message(self._idents[agent], frame)
+        finally:
+            self.t_go = t_go
+
+    # -- launch and handshake ----------------------------------------------------------
+    def launch(self) -> None:
+        self.write_run_json(
+            engine="lockstep",
+            clock="virtual: round k at k * period_ms, from 0",
+            versions={
+                "swarmrig": VERSION,
+                "python": platform.python_version(),
+                "pyzmq": zmq.__version__,
+                "libzmq": zmq.zmq_version(),
+                "numpy": np.__version__,
+            },
+            coordinator={
+                "host": socket.gethostname(),
+                "pid": os.getpid(),
+                "user": getpass.getuser(),
+                "endpoint": None,
+            },
+            label=self.opt.label,
+            started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            stopped_utc=None,
+            exit="starting",
+            process_group=None,
+        )
+
+    def handshake(self) -> None:
+        host = socket.gethostname()
+        for a in self.agents:
+            ident = f"lockstep-{a.id}".encode()
+            self._idents.append(ident)
+            self.by_ident[ident] = a.id
+            a.ident, a.host, a.epoch, a.offset = ident, host, 0, 0.0
+            a.records.append(AgentRecord(agent=a.id, epoch=0, offset=0.0))
+            self.members.append(_Member(a.id, self.from_agent, self.virtual_clock))
+        for a in self.agents:
+            self.send(a, "plan", plan=self.swarm.plan(a.id, 0))
+            self.send(a, "peers", peers={})
+            a.ready = True
+
+    # -- the run phase -----------------------------------------------------------------
+    def run_phase(self) -> None:
+        self.build_timeline()
+        members = self.members
+        self.vnow = 0.0
+        self.t_go = self.clock()
+        for a in self.agents:
+            a.running = True
+            self.send(a, "go", start_node=0.0, iteration=0)
+        self.event("go", agents=self.n, lead_s=0.0, engine="lockstep")
+        limit = _round_limit(self.s.iterations, self.s.seconds, self.period_s)
+        for m in members:
+            m.state, m.out = m.initial()
+            m._next_sample = m.start_node
+            m.sample(m.state, self.vnow)
+        for m in members:
+            m.pub = _Fanout(
+                self, [members[j].rx.on_frame for j in self.swarm.topology.out_neighbours(m.agent)]
+            )
+        timeline = self.timeline
+        period = self.period_s
+        k = 0
+        while k < limit:
+            now = k * period
+            self.vnow = now
+            while timeline and timeline[0][0] <= now:
+                _, _, _what, action = timeline.pop(0)
+                action()
+            for m in members:
+                m.publish(m.out, k)
+            bound = float(k)
+            for m in members:
+                self._step(m, k, bound, now)
+            k += 1
+            if k % ROUNDS_PER_FLUSH == 0:
+                self._flush_and_view()
+            self._check_round()
+        self.vnow = k * period
+        for m in members:
+            m.finish(m.state, "budget")
+            m.done = True
+            if m.life.phase is Phase.RUNNING:
+                m.life.finished()
+        raise _Stop("budget", 0)
+
+    def _step(self, m: _Member, k: int, bound: float, now: float) -> None:
+        """One agent's half of round k, as in Node.rounds after its barrier."""
+        if m.done:
+            return
+        try:
+            m.rx.release(bound, now)
+            m.state, m.out = m.algorithm.step(m.state, m.rx.inbox(), k)
+            m.iteration = k + 1
+            m.check_state(m.state)
+        except _Diverged as d:
+            m.flush()
+            m.send_ctl(
+                "failed",
+                error=f"diverged: agent {m.agent} state left"
+                f" the bounded region at iteration {d.iteration}",
+            )
+            self._gone(m)
+            return
+        except Exception as exc:  # what Node.run reports for an agent that raised
+            m.send_ctl("failed", error=f"agent {m.agent}: {type(exc).__name__}: {exc}")
+            self._gone(m)
+            return
+        if m._sample_due(now):
+            m.sample(m.state, now)
+            m._next_sample = now + m.every_s
+
+    def _gone(self, m: _Member) -> None:
+        """A failed agent's process would exit now: no final report will come."""
+        m.done = m.failed = True
+        m.life.fail()
+        a = self.agents[m.agent]
+        a.dead = True
+        a.record.alive = False
+
+    def _flush_and_view(self) -> None:
+        for m in self.members:
+            if not m.done:
+                m.flush()
+        if self.view is not None:
+            self.view(self)
+
+    def _check_round(self) -> None:
+        """Between rounds: the base run phase's stop conditions, in its order."""
+        if self.stop_requested:
+            raise _Stop(self.stop_requested, 130)
+        if self.first_diverged is not None:
+            self.verdict = "diverged"
+            raise _Stop(self.first_diverged, 0)
+        if self.failures:
+            raise _Stop("agent failure: " + self.failures[0], 3)
+
+    def stop_all(self, reason: str) -> None:
+        """Stop every agent still running; each sends its final report, as after a stop."""
+        self.stop_requested = self.stop_requested or reason
+        for a, m in zip(self.agents, self.members, strict=False):
+            if m.failed:
+                continue
+            self.send(a, "stop", reason=reason)
+            if not m.done and m.state is not None:
+                m.finish(m.state, m.stop_reason or reason)
+                m.done = True
+
+
+def execute_lockstep(swarm: Swarm, options: RunOptions | None = None) -> RunResult:
+    """Run ``swarm`` with the lockstep engine; the run directory is complete on return.
+
+    Same run directory and RunResult as :func:`coordinator._run.execute`; run.json says
+    ``engine: "lockstep"`` and names no agent pids and no process group. Raises
+    ScenarioError (naming the key) for what lockstep cannot model, before writing anything.
+    """
+    return LockstepCoordinator(swarm, options or RunOptions()).execute()
