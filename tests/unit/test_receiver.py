@@ -234,9 +234,14 @@ class Expected:
     dropped_injected: int = 0
     rejected: int = 0
     duplicated: int = 0
-    lost_transport: int = 0
     max_seq: int = -1
     first_seq: int | None = None
+    seen: set[int] = field(default_factory=set)
+
+    @property
+    def lost_transport(self) -> int:
+        """Sequence numbers below the highest one seen that were never seen."""
+        return self.max_seq + 1 - len(self.seen)
 
 
 @dataclass
@@ -263,10 +268,10 @@ class Model:
         if e.first_seq is None:
             e.first_seq = seq
         e.received += 1
+        e.seen.add(seq)
         if seq <= e.max_seq:
             e.rejected += 1
             return
-        e.lost_transport += seq - e.max_seq - 1
         e.max_seq = seq
         if epoch < self.epoch[sender]:
             e.rejected += 1
