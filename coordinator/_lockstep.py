@@ -213,6 +213,10 @@ class LockstepCoordinator(Coordinator):
     def now_s(self) -> float:
         return self.vnow
 
+    def event(self, name: str, /, **fields: Any) -> None:
+        # Positional-only: the base class's fault-sent event passes a field named "kind".
+        self.dir.event({"t_s": round(self.now_s(), 6), "event": name, **fields})
+
     def virtual_clock(self) -> float:
         """The agents' clock: the current round's virtual time."""
         return self.vnow
