@@ -544,7 +544,7 @@ def test_oversized_control_frame_is_refused() -> None:
 
 
 # ---------------------------------------------------------------------------- properties
-EXAMPLES = 400
+EXAMPLES = 250
 
 
 @settings(max_examples=EXAMPLES, deadline=None)
