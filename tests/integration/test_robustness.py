@@ -164,7 +164,7 @@ def test_control_junk_is_recorded_and_the_run_completes(
 ) -> None:
     out = tmp_path / "run"
     p = processes.start(
-        "run", str(write_scenario(tmp_path / "s.toml", 1.5)), "--out", str(out), "--quiet"
+        "run", str(write_scenario(tmp_path / "s.toml", 2.5)), "--out", str(out), "--quiet"
     )
     rj = wait_running(p, out)
     endpoint = rj["coordinator"]["endpoint"]
@@ -204,7 +204,7 @@ def test_refused_hellos_and_malformed_envelopes_are_recorded(
     # events.jsonl beside the control-rejected ones, so that an intrusion leaves a trace.
     out = tmp_path / "run"
     p = processes.start(
-        "run", str(write_scenario(tmp_path / "s.toml", 1.0)), "--out", str(out), "--quiet"
+        "run", str(write_scenario(tmp_path / "s.toml", 2.0)), "--out", str(out), "--quiet"
     )
     endpoint = wait_running(p, out)["coordinator"]["endpoint"]
     dealer = sockets.socket(zmq.DEALER)
