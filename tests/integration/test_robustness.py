@@ -163,6 +163,7 @@ def test_control_junk_is_recorded_and_the_run_completes(
     processes: Any, sockets: Sockets, tmp_path: Path
 ) -> None:
     out = tmp_path / "run"
+    processes.watch_run_dir(out)  # the swarm's own process group is killed at teardown
     p = processes.start(
         "run", str(write_scenario(tmp_path / "s.toml", 2.5)), "--out", str(out), "--quiet"
     )
@@ -203,6 +204,7 @@ def test_refused_hellos_and_malformed_envelopes_are_recorded(
     # A refusal and a message that is not one frame are junk like any other: they belong in
     # events.jsonl beside the control-rejected ones, so that an intrusion leaves a trace.
     out = tmp_path / "run"
+    processes.watch_run_dir(out)  # the swarm's own process group is killed at teardown
     p = processes.start(
         "run", str(write_scenario(tmp_path / "s.toml", 2.0)), "--out", str(out), "--quiet"
     )
@@ -226,6 +228,7 @@ def test_a_hello_from_a_peer_that_vanished_does_not_stop_the_run(
     # The refusal goes back to a peer that has already disconnected: with ROUTER_MANDATORY
     # the send fails (EHOSTUNREACH), and that must cost the coordinator nothing.
     out = tmp_path / "run"
+    processes.watch_run_dir(out)  # the swarm's own process group is killed at teardown
     p = processes.start(
         "run", str(write_scenario(tmp_path / "s.toml", 1.5)), "--out", str(out), "--quiet"
     )
