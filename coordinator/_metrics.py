@@ -95,8 +95,9 @@ def link_accounting(
     Per directed link and sender epoch, the receiver's incarnations are taken in order.
     A receiver incarnation that died (no final report) loses what it held; sequence numbers
     between what one incarnation last reported and the next one first saw went to a dead
-    peer and count as lost in transport. For a sender incarnation that died, nothing is in
-    flight any more: what no receiver saw is lost.
+    peer and count as lost in transport. For a sender incarnation that died, nothing is on
+    the way any more: what no receiver saw is lost; what a live receiver still holds behind
+    a delay did arrive and is in flight, whoever sent it.
     """
     sent = _sent_by_epoch(records)
     by_agent: dict[int, list[AgentRecord]] = {}
@@ -146,7 +147,7 @@ def link_accounting(
                 # receiver only the part after what the previous incarnation saw is lost.
                 row["lost_transport"] += (lost - first) + max(0, first - (max_seen + 1))
                 held = int(per[HELD])
-                if live and s_alive:
+                if live:
                     row["in_flight"] += held
                 else:
                     row["lost_transport"] += held
