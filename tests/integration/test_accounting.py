@@ -146,3 +146,24 @@ def test_without_faults_nothing_is_lost_or_rejected(processes, tmp_path, mode):
         assert r["delivered"] > 0.9 * r["sent"], (link, r)
     for i in range(4):
         assert final_report(result.run_dir, i)["counters"]["unattributed_rejected"] == 0
+
+
+def test_messages_a_live_receiver_still_holds_from_a_crashed_sender_are_in_flight(
+    processes, tmp_path
+):
+    """Agent 2 dies for good at 1.75 s; agent 1 still holds what 2 sent in its last 0.25 s
+    behind a 0.5 s delay when the run stops at 2 s. Those messages arrived: they are in
+    flight (held by a delay at a live receiver), not lost in transport."""
+    sc = base("crash-held", agents=4, mode="async", seconds=2.0)
+    sc["timing"] = {"period_ms": 2.0, "jitter": 0.1}
+    sc["fault"] = [
+        {"kind": "delay", "links": {"from": 2, "to": 1}, "distribution": "constant", "ms": 500.0},
+        {"kind": "crash", "agents": [2], "start_s": 1.75},
+    ]
+    result = run_swarm(processes, tmp_path / "run", sc)
+    rows = assert_closes(result)
+    c = in_counters(final_report(result.run_dir, 1), 2)
+    assert c["held"] > 0.5 * 0.25 / 2e-3, c  # what 2 sent in its last quarter second
+    row = rows[(2, 1)]
+    assert row["in_flight"] == c["held"], (row, c)
+    assert row["lost_transport"] == 0, row
