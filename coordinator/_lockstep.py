@@ -234,7 +234,11 @@ class LockstepCoordinator(Coordinator):
         if msg is None:
             return
         if msg["t"] == "plan":
-            m.setup(msg["plan"])
+            try:
+                m.setup(msg["plan"])
+            except Exception as exc:  # what Node.run reports when its set-up raises
+                m.send_ctl("failed", error=f"agent {m.agent}: {type(exc).__name__}: {exc}")
+                self._gone(m)
         elif msg["t"] == "go":
             m.start_node = float(msg["start_node"])
             m.rx.start = m.start_node
@@ -290,6 +294,8 @@ class LockstepCoordinator(Coordinator):
             self.send(a, "plan", plan=self.swarm.plan(a.id, 0))
             self.send(a, "peers", peers={})
             a.ready = True
+        if self.failures:
+            raise _Stop("an agent failed during start-up: " + self.failures[0], 3)
 
     # -- the run phase -----------------------------------------------------------------
     def run_phase(self) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import signal
 from pathlib import Path
 from typing import Any
 
@@ -14,10 +15,17 @@ from rich.console import Console
 from scipy import stats
 
 import coordinator
-from coordinator._lockstep import ROUNDS_PER_FLUSH, LockstepCoordinator, execute_lockstep
+from coordinator._lockstep import (
+    ROUNDS_PER_FLUSH,
+    LockstepCoordinator,
+    _Member,
+    execute_lockstep,
+)
 from coordinator._run import RunFailed, RunOptions, RunResult
 from coordinator._rundir import read_telemetry
 from coordinator._view import LiveView
+from node._dgd import DGD
+from node._errors import ObjectiveError
 from topologies._errors import ScenarioError
 
 # The run directory and summary keys the design fixes (/work/shared/design.md, "Run directory").
@@ -369,15 +377,60 @@ def test_interrupt_stops_at_a_round_boundary_and_the_view_renders(tmp_path: Path
         console = Console(file=io.StringIO(), width=120)
         console.print(view.render(coord))
         shown.append(console.file.getvalue())  # type: ignore[attr-defined]
-        coord.stop_requested = "interrupted (SIGINT)"
+        signal.raise_signal(signal.SIGINT)  # the coordinator's own handler takes it
 
     res = run(scenario(iterations=5000), tmp_path / "run", view=interrupt)
     assert res.exit_code == 130
     assert res.summary["verdict"] == "interrupted"
+    assert res.summary["exit"] == "interrupted (SIGINT)"
     finals = final_batches(res.run_dir, 8)
     assert [f["iteration"] for f in finals] == [ROUNDS_PER_FLUSH] * 8
     assert {f["reason"] for f in finals} == {"interrupted (SIGINT)"}
     assert len(shown) == 1 and "lockstep" in shown[0] and "running" in shown[0]
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler  # restored
+
+
+def test_an_agent_that_raises_fails_the_run(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    step = DGD.step
+
+    def faulty(self: DGD, state: Any, inbox: Any, k: int) -> Any:
+        if self.spec.id == 2 and k == 7:
+            raise ObjectiveError("agent 2: objective 'quadratic' returned a non-finite gradient")
+        return step(self, state, inbox, k)
+
+    monkeypatch.setattr(DGD, "step", faulty)
+    res = run(scenario(iterations=100), tmp_path / "run")
+    assert res.exit_code == 3
+    assert res.summary["exit"].startswith("agent failure: agent 2: ObjectiveError:")
+    assert res.summary["verdict"] == "failed"
+    reports = {}
+    for i in range(8):
+        path = res.run_dir / "telemetry" / f"agent-{i}.msgpack"
+        batches = read_telemetry(path) if path.exists() else []
+        reports[i] = [b["final"] for b in batches if "final" in b]
+    assert reports.pop(2) == []  # a failed agent sends no final report
+    assert {f[0]["iteration"] for f in reports.values()} == {8}
+
+
+def test_a_failed_set_up_stops_before_the_run(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    setup = _Member.setup
+
+    def faulty(self: _Member, plan: Any) -> None:
+        if self.agent == 3:
+            raise RuntimeError("no such module")
+        setup(self, plan)
+
+    monkeypatch.setattr(_Member, "setup", faulty)
+    res = run(scenario(), tmp_path / "run")
+    assert res.exit_code == 3
+    assert res.summary["exit"] == (
+        "an agent failed during start-up: agent 3: RuntimeError: no such module"
+    )
+    assert res.summary["iterations_total"] == 0
 
 
 def test_refuses_remote_agents(tmp_path: Path) -> None:
