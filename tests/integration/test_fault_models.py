@@ -73,7 +73,9 @@ def events(run_dir: Path) -> list[dict[str, Any]]:
 
 
 def batches(run_dir: Path, agent: int) -> list[dict[str, Any]]:
-    return read_telemetry(run_dir / "telemetry" / f"agent-{agent}.msgpack")
+    """Every telemetry batch of ``agent``; none if it never sent one (killed early)."""
+    path = run_dir / "telemetry" / f"agent-{agent}.msgpack"
+    return read_telemetry(path) if path.exists() else []
 
 
 def final_report(run_dir: Path, agent: int, epoch: int = 0) -> dict[str, Any]:

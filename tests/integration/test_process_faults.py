@@ -19,6 +19,7 @@ import numpy as np
 import psutil
 import pytest
 
+import coordinator
 from tests.integration.test_fault_models import (
     base,
     events,
@@ -306,3 +307,42 @@ def test_link_fault_windows_hold_across_a_restart(processes, tmp_path):
                 f"({max(inside)} delivered before {t_end} s, {after[-1]} at the end)"
             )
     assert not problems, "\n".join(problems)
+
+
+@pytest.mark.parametrize("kind", ["crash", "pause", "slow"])
+def test_process_faults_given_by_iterations_act_at_those_iterations(processes, tmp_path, kind):
+    """The scenario accepts start_iteration (and duration_iterations) for process faults;
+    the coordinator must then act when the agent has reached that iteration. It learns an
+    agent's iteration from telemetry (every 10 ms here, 5 iterations), so up to 100
+    iterations late is accepted."""
+    k, lo, length, late = 2, 300, 200, 100
+    fault: dict[str, Any] = {"kind": kind, "agents": [k], "start_iteration": lo}
+    if kind == "pause":
+        fault["duration_iterations"] = length
+    if kind == "slow":
+        fault.update(factor=3.0, duration_iterations=length)
+    sc = base(f"by-iteration-{kind}", agents=4, mode="async", iterations=800)
+    sc["timing"] = {"period_ms": 2.0, "jitter": 0.1}
+    sc["telemetry"] = {"every_iterations": 1, "batch_ms": 10.0}
+    sc["fault"] = [fault]
+    out = tmp_path / "run"
+    processes.watch_run_dir(out)
+    result = coordinator.run(sc, out=out)
+    assert result.exit_code == 0, result.summary["exit"]
+    ev = events(result.run_dir)
+    mine = [(it, t) for ep, it, t, _ in samples(result.run_dir, k) if ep == 0]
+
+    def iteration_at(t_s: float) -> int:
+        return max([it for it, t in mine if t <= t_s], default=0)
+
+    acts = [e for e in ev if e["event"] == kind]
+    assert acts, [e["event"] for e in ev]
+    at = iteration_at(acts[0]["t_s"])
+    assert lo - 1 <= at < lo + late, f"{kind} at iteration {at}, asked for {lo}"
+    if kind == "slow":
+        assert [e["factor"] for e in acts] == [3.0, 1.0], acts
+        end = iteration_at(acts[1]["t_s"])
+        assert lo + length - 1 <= end < lo + length + late, f"slow lifted at iteration {end}"
+    if kind == "pause":
+        resume = [e for e in ev if e["event"] == "resume"]
+        assert resume and resume[0]["t_s"] > acts[0]["t_s"], ev
