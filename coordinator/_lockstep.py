@@ -8,11 +8,14 @@ no time window is involved) and write the same run directory, only much faster:
   :meth:`node._runtime.Node.setup` builds (``spec_from_plan``, the registered algorithm, a
   :class:`~node._receiver.Receiver` with the plan's link faults), minus the sockets;
 * round k, in the order of :meth:`node._runtime.Node.rounds`: every agent publishes its
-  payload for iteration k as a real frame (``encode_data(agent, 0, seq, k, now, payload)``,
-  seq counting from 0 per agent); every frame goes to each out-neighbour's
-  ``Receiver.on_frame(frame, now)``, whose link models make the same pure decisions as in an
-  agent process; then each agent does ``rx.release(float(k), now)`` and
-  ``algorithm.step(state, rx.inbox(), k)``, checks divergence and samples as ``Node`` does;
+  payload for iteration k with ``Node.publish`` itself (the same frame encoder, epoch 0, seq
+  counting from 0 per agent, send time = now), into a stand-in for its PUB socket that hands
+  the frame to each out-neighbour's ``Receiver.on_frame(frame, now)``, whose link models make
+  the same pure decisions as in an agent process; then each agent, in id order, does
+  ``rx.release(float(k), now)`` and ``algorithm.step(state, rx.inbox(), k)``, checks
+  divergence (``Node.check_state``) and samples as ``Node`` does. Every frame of round k
+  reaches its receivers before any of them steps, which is what the barrier of a real
+  rounds run guarantees (frames of later rounds are held there by their release key);
 * telemetry, final reports, fault directives and their acknowledgements go through the
   control codec into the unchanged :class:`~coordinator._run.Coordinator` handlers, so
   metrics.csv, links.csv and summary.json come out of the same code as for a real run.
