@@ -16,6 +16,7 @@ Rules:
 
 from __future__ import annotations
 
+import math
 import zlib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -30,6 +31,8 @@ from node._wire import CRC_RESIDUE, DATA, PROBE, DataLayout
 
 __all__ = ["COUNTER_FIELDS", "InLinkCounters", "Receiver"]
 
+#: gaps up to this long remember their sequence numbers (for late arrivals)
+_TRACKED_GAP = 1 << 16
 #: below this many frames a batch is handled frame by frame
 _BATCH = 16
 _crc32 = zlib.crc32
@@ -57,6 +60,8 @@ class InLinkCounters:
     held: int = 0
     #: first sequence number seen from this epoch (a restarted receiver starts late)
     first_seq: int = 0
+    #: the sequence numbers counted lost (a late arrival is moved to rejected)
+    missing: set[int] = field(default_factory=set)
     delays: list[float] = field(default_factory=list)
 
     def as_list(self) -> list[Any]:
@@ -225,8 +230,15 @@ class Receiver:
         c.received += 1
         if seq <= c.max_seq:  # replayed or reordered by the transport: refuse
             c.rejected += 1
+            if seq in c.missing:  # it arrived after all: refused, not lost
+                c.missing.discard(seq)
+                c.lost_transport -= 1
             return
-        c.lost_transport += seq - c.max_seq - 1
+        gap = seq - c.max_seq - 1
+        if gap:
+            c.lost_transport += gap
+            if gap <= _TRACKED_GAP:
+                c.missing.update(range(c.max_seq + 1, seq))
         c.max_seq = seq
         if epoch < link.epoch:  # queued by an incarnation that is gone: refuse
             c.rejected += 1
@@ -344,7 +356,8 @@ class Receiver:
     ) -> None:
         if self.mode == "rounds":
             # Delays count in rounds: a delay shorter than one round period arrives in time.
-            lag = int(delay_s / self.period) if delay_s > 0.0 else 0
+            # (the small epsilon keeps an exact multiple of the period from losing a round)
+            lag = math.floor(delay_s / self.period + 1e-9) if delay_s > 0.0 else 0
             key = float(iteration + lag)
         else:
             key = now + delay_s

@@ -485,6 +485,9 @@ class Node:
                     elif self.control_tick():
                         return state, self.stop_reason or "coordinator lost"
             now = self.clock()
+            # Take in whatever else is queued, so that a neighbour given up on (stale) is
+            # heard again as soon as it speaks, even when nobody is awaited this round.
+            self.drain(now)
             self.rx.release(float(k), now)
             state, out = self.algorithm.step(state, self.rx.inbox(), k)
             self.iteration = k + 1

@@ -22,18 +22,23 @@ import psutil
 import pytest
 
 MARKERS = ("node._forkserver", "swarmrig node", "coordinator.cli")
+#: every process this test session starts inherits this tag in its environment, so the
+#: session checks (and kills) its own processes only, never those of a parallel session
+SESSION_TAG = "SWARMRIG_TEST_SESSION"
+os.environ.setdefault(SESSION_TAG, f"{os.getpid()}-{time.time_ns()}")
 
 
 def swarmrig_processes() -> list[psutil.Process]:
-    """Live processes of ours: fork servers, their agents, CLI coordinators started by tests."""
+    """Live processes of this session: fork servers, their agents, CLI coordinators."""
     me = os.getpid()
+    tag = os.environ[SESSION_TAG]
     found = []
     for p in psutil.process_iter(["pid", "cmdline", "status"]):
         try:
             if p.info["pid"] == me or p.info["status"] == psutil.STATUS_ZOMBIE:
                 continue
             cmd = " ".join(p.info["cmdline"] or [])
-            if any(m in cmd for m in MARKERS):
+            if any(m in cmd for m in MARKERS) and p.environ().get(SESSION_TAG) == tag:
                 found.append(p)
         except (psutil.NoSuchProcess, psutil.AccessDenied):
             continue
