@@ -15,7 +15,9 @@ import pytest
 
 from tests.integration.test_fault_models import (
     base,
+    batches,
     decided_seqs,
+    events,
     final_report,
     in_counters,
     link_model,
@@ -151,9 +153,10 @@ def test_without_faults_nothing_is_lost_or_rejected(processes, tmp_path, mode):
 def test_messages_a_live_receiver_still_holds_from_a_crashed_sender_are_in_flight(
     processes, tmp_path
 ):
-    """Agent 2 dies for good at 1.75 s; agent 1 still holds what 2 sent in its last 0.25 s
+    """Agent 2 dies for good at 1.75 s; agent 1 still holds what 2 sent in its last 0.5 s
     behind a 0.5 s delay when the run stops at 2 s. Those messages arrived: they are in
-    flight (held by a delay at a live receiver), not lost in transport."""
+    flight (held by a delay at a live receiver), not lost in transport. Only what agent 1
+    never saw of the dead sender counts as lost."""
     sc = base("crash-held", agents=4, mode="async", seconds=2.0)
     sc["timing"] = {"period_ms": 2.0, "jitter": 0.1}
     sc["fault"] = [
@@ -162,8 +165,10 @@ def test_messages_a_live_receiver_still_holds_from_a_crashed_sender_are_in_fligh
     ]
     result = run_swarm(processes, tmp_path / "run", sc)
     rows = assert_closes(result)
+    assert any(e["event"] == "crash" for e in events(result.run_dir))
+    assert not [b for b in batches(result.run_dir, 2) if "final" in b], "agent 2 did not die"
     c = in_counters(final_report(result.run_dir, 1), 2)
-    assert c["held"] > 0.5 * 0.25 / 2e-3, c  # what 2 sent in its last quarter second
+    assert c["held"] > 0.25 * 0.5 / 2e-3 and c["lost_transport"] == 0, c
     row = rows[(2, 1)]
     assert row["in_flight"] == c["held"], (row, c)
-    assert row["lost_transport"] == 0, row
+    assert row["lost_transport"] == row["sent"] - (c["max_seq"] + 1), (row, c)
