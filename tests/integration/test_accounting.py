@@ -145,7 +145,7 @@ def test_without_faults_nothing_is_lost_or_rejected(processes, tmp_path, mode):
     for link, r in rows.items():
         assert r["lost_transport"] == 0 and r["rejected"] == 0, (link, r)
         assert r["dropped_injected"] == 0 and r["duplicated"] == 0, (link, r)
-        assert r["delivered"] > 0.9 * r["sent"], (link, r)
+        assert r["delivered"] > 0.8 * r["sent"], (link, r)
     for i in range(4):
         assert final_report(result.run_dir, i)["counters"]["unattributed_rejected"] == 0
 

@@ -40,6 +40,9 @@ pytestmark = pytest.mark.integration
 CONF = 0.999  # binomial interval level: common practice, no source
 P_FLOOR = 1e-3  # KS p-value floor: common practice, no source
 N_SE = 5.0  # methods.md: "assert within 4 to 5 standard errors"
+#: share of the nominal iteration rate a "kept going" check asks for: a loaded two-core
+#: machine runs async agents well below their period (common practice, no source)
+PROGRESS = 0.25
 PROCESS_KINDS = frozenset({"crash", "pause", "slow"})
 WINDOW_KEYS = frozenset({"start_s", "duration_s", "start_iteration", "duration_iterations"})
 

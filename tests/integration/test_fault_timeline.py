@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from tests.integration.test_fault_models import (
+    PROGRESS,
     base,
     decided_seqs,
     events,
@@ -114,7 +115,7 @@ def test_outage_by_time_window_in_async_mode(processes, tmp_path):
     # the drops are the messages sent inside the outage, give or take the one in transit
     # at each end (a transit takes well under a period here)
     in_window = int(np.count_nonzero((t_send >= eff_on) & (t_send < t_off)))
-    assert in_window >= 0.5 * (t_off - eff_on) / (period_ms / 1e3), in_window
+    assert in_window >= PROGRESS * (t_off - eff_on) / (period_ms / 1e3), in_window
     assert abs(c["dropped_injected"] - in_window) <= 2, (c["dropped_injected"], in_window)
     assert link_rows(result.run_dir)[(0, 1)]["dropped_injected"] == c["dropped_injected"]
 
@@ -126,12 +127,12 @@ def test_outage_by_time_window_in_async_mode(processes, tmp_path):
     assert len(inside) >= 5, len(inside)
     assert len(set(inside)) == 1, f"delivered moved during the outage: {sorted(set(inside))}"
     later = [s[2]["delivered"] for s in snaps if s[0] >= t_off + margin]
-    assert later and later[-1] - inside[-1] >= 0.5 * (1.4 - t_off) / (period_ms / 1e3), (
+    assert later and later[-1] - inside[-1] >= PROGRESS * (1.4 - t_off) / (period_ms / 1e3), (
         inside[-1],
         later[-1],
     )
     before = [s[2]["delivered"] for s in snaps if s[0] < t_on - margin]
-    assert before and before[-1] >= 0.5 * t_on / (period_ms / 1e3), before[-1:]
+    assert before and before[-1] >= PROGRESS * t_on / (period_ms / 1e3), before[-1:]
 
 
 def test_partition_drops_exactly_the_links_between_the_groups(processes, tmp_path):

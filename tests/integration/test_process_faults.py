@@ -21,6 +21,7 @@ import pytest
 
 import coordinator
 from tests.integration.test_fault_models import (
+    PROGRESS,
     base,
     events,
     final_report,
@@ -156,7 +157,7 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
         span = during[-1][1] - during[0][1]
         grown = during[-1][0] - during[0][0]
         assert span > 0.8 * (rejoined["t_s"] - crash["t_s"]) - 0.05, (j, span)
-        assert grown >= 0.5 * span / (period_ms / 1e3), (j, grown, span)
+        assert grown >= PROGRESS * span / (period_ms / 1e3), (j, grown, span)
 
         # Nothing from the old epoch was accepted once it was dead: its counters at the
         # neighbour stop moving after the crash (anything late would count as rejected).
@@ -175,7 +176,7 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
         ), old_c
         # the new epoch counts apart, from its own sequence number 0, refused nothing
         assert new_c["first_seq"] == 0 and new_c["rejected"] == 0, new_c
-        assert new_c["delivered"] >= 0.3 * (2.0 - rejoined["t_s"]) / (period_ms / 1e3), new_c
+        assert new_c["delivered"] >= PROGRESS * (2.0 - rejoined["t_s"]) / (period_ms / 1e3), new_c
     # every link, to and from the agent of two incarnations, accounts for what was sent
     for link, row in link_rows(run_dir).items():
         assert row["sent"] == (
@@ -191,10 +192,11 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
 
 
 def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
-    paused, slowed, factor = 1, 3, 3.0
+    paused, slowed, factor = 1, 3, 4.0
     t_pause, pause_len = 0.4, 0.4
     t_slow, slow_len = 0.9, 0.6
-    period_ms = 2.0
+    # 4 ms: a period a loaded two-core machine still keeps for four agents
+    period_ms = 4.0
     sc = base("straggler", agents=4, mode="async", seconds=2.0)
     sc["timing"] = {"period_ms": period_ms, "jitter": 0.1}
     sc["telemetry"] = {"every_iterations": 1, "batch_ms": 20.0}
@@ -234,12 +236,14 @@ def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
     # while the others went on
     other = [(it, t) for ep, it, t, _ in samples(result.run_dir, 0) if ep == 0]
     grown = [it for it, t in other if pause["t_s"] <= t <= resume["t_s"]]
-    assert grown[-1] - grown[0] >= 0.5 * pause_len / (period_ms / 1e3), grown[-1] - grown[0]
+    assert grown[-1] - grown[0] >= PROGRESS * pause_len / (period_ms / 1e3), grown[-1] - grown[0]
 
-    # metrics.csv sees the straggler: the slowest iteration stands still during the pause
+    # metrics.csv sees the straggler: in the second half of the pause (the others have long
+    # passed it by then) the slowest iteration is the stopped agent's, standing still
     with (result.run_dir / "metrics.csv").open() as f:
         grid = [(float(r["t_s"]), int(r["iteration_min"])) for r in csv.DictReader(f)]
-    stalled = {m for t, m in grid if pause["t_s"] + eps < t < resume["t_s"] - eps}
+    half = 0.5 * (pause["t_s"] + resume["t_s"])
+    stalled = {m for t, m in grid if half < t < resume["t_s"] - eps}
     assert stalled == {before[-1][0]}, (stalled, before[-1])
 
     # slow: the iteration rate during the window drops by about the factor
@@ -252,17 +256,21 @@ def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
 
     on, off = slows[0]["t_s"], slows[1]["t_s"]
     margin = 0.05
-    normal = rate(slowed, on - 0.4, on - margin)
+    normal = rate(slowed, on - 0.25, on - margin)
     slow = rate(slowed, on + margin, off - margin)
     back = rate(slowed, off + margin, 2.0 - margin)
-    assert 1.0 / period_ms * 1e3 * 0.5 < normal, normal  # ran near its period before
-    ratio = normal / slow
-    # "roughly the factor": 25 % either way, common practice, no source
-    assert factor / 1.25 < ratio < factor * 1.25, (normal, slow, ratio)
-    assert back / slow > factor / 1.25, (back, slow)
+    # The slowed period is honoured: the rate is the nominal one divided by the factor.
+    # A loaded machine may keep an agent below its nominal period, hardly below the slowed
+    # one, so the nominal figure is the reference and the measured drop only has to be
+    # clear. Tolerances: 15 % and a drop of at least half the factor, common practice, no
+    # source.
+    slowed_rate = 1e3 / (period_ms * factor)
+    assert abs(slow - slowed_rate) < 0.15 * slowed_rate, (slow, slowed_rate)
+    assert normal / slow > factor / 2, (normal, slow)
+    assert back / slow > factor / 2, (back, slow)
     # a neighbour of the slowed agent keeps its own pace in async mode
     neighbour = rate(0, on + margin, off - margin)
-    assert neighbour / slow > factor / 1.25, (neighbour, slow)
+    assert neighbour / slow > factor / 2, (neighbour, slow)
 
 
 def test_link_fault_windows_hold_across_a_restart(processes, tmp_path):
@@ -301,7 +309,7 @@ def test_link_fault_windows_hold_across_a_restart(processes, tmp_path):
         final = in_counters(final_report(run_dir, k, epoch=1), src)
         if final["dropped_injected"] == 0:
             problems.append(f"{src} -> {k}: nothing dropped after the restart")
-        if after[-1] - max(inside) < 0.3 * (2.0 - t_end) / (period_ms / 1e3):
+        if after[-1] - max(inside) < PROGRESS * (2.0 - t_end) / (period_ms / 1e3):
             problems.append(
                 f"{src} -> {k}: delivery did not resume after the outage ended "
                 f"({max(inside)} delivered before {t_end} s, {after[-1]} at the end)"
