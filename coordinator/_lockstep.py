@@ -248,16 +248,12 @@ class LockstepCoordinator(Coordinator):
             m.iteration = int(msg["iteration"])
 
     def from_agent(self, agent: int, frame: bytes) -> None:
-        """Agent -> coordinator: the base class's handler, on the agents' clock.
+        """Agent -> coordinator: the base class's handler, on the agents' clock."""
+        self.on_message(self._idents[agent], frame)
 
-        The agents' times are virtual and start at 0, so there is no run start to subtract
-        (the base class subtracts ``t_go``, which here is the real start of the loop).
-        """
-        t_go, self.t_go = self.t_go, None
-        try:
-            self.on_message(self._idents[agent], frame)
-        finally:
-            self.t_go = t_go
+    def agent_time_origin(self, a: _Agent) -> float:
+        # the agents' times are virtual and start at 0: there is no run start to subtract
+        return 0.0
 
     # -- launch and handshake ----------------------------------------------------------
     def launch(self) -> None:

@@ -30,7 +30,7 @@ from coordinator._reference import total_objective
 from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
 from coordinator._swarm import Swarm, with_transport
 from node._errors import WireError
-from node._wire import decode_control, encode_control
+from node._wire import MAX_CONTROL_FRAME, decode_control, encode_control
 from topologies._errors import SwarmrigError
 
 __all__ = ["RunFailed", "RunOptions", "RunResult", "execute"]
@@ -58,6 +58,8 @@ class RunOptions:
     handshake_timeout: float | None = None
     #: label written to run.json and summary.json (e.g. "baseline")
     label: str | None = None
+    #: "processes" (one OS process per agent) or "lockstep" (rounds mode in this process)
+    engine: str = "processes"
 
 
 @dataclass(slots=True)
@@ -125,6 +127,7 @@ class Coordinator:
         self.failures: list[str] = []
         self.first_diverged: str | None = None
         self.active_faults: dict[int, dict[str, Any]] = {}
+        self.active_timed: dict[int, dict[str, Any]] = {}
         self.directive_seq = 0
         self.directives: dict[int, dict[str, Any]] = {}
         self.timeline: list[tuple[float, int, str, Callable[[], None]]] = []
@@ -148,8 +151,8 @@ class Coordinator:
         except zmq.ZMQError:  # unroutable (dead peer) or full: the agent is gone or stuck
             pass
 
-    def event(self, kind: str, **fields: Any) -> None:
-        self.dir.event({"t_s": round(self.now_s(), 6), "event": kind, **fields})
+    def event(self, name: str, /, **fields: Any) -> None:
+        self.dir.event({"t_s": round(self.now_s(), 6), "event": name, **fields})
 
     def write_run_json(self, **updates: Any) -> None:
         self.run_json.update(updates)
@@ -165,6 +168,9 @@ class Coordinator:
         self.router = self.ctx.socket(zmq.ROUTER)
         self.router.setsockopt(zmq.LINGER, 0)
         self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)
+        # Generous: the codec refuses and records frames above MAX_CONTROL_FRAME; a peer far
+        # above it is cut off by libzmq before it can fill memory.
+        self.router.setsockopt(zmq.MAXMSGSIZE, 4 * MAX_CONTROL_FRAME)
         self.router.setsockopt(zmq.SNDHWM, 100000)
         self.router.setsockopt(zmq.RCVHWM, 0)
         listen = self.opt.listen or "tcp://127.0.0.1:*"
@@ -213,6 +219,12 @@ class Coordinator:
     def on_fork_events(self) -> None:
         if self.fork is None:
             return
+        if self.fork.proc.poll() is not None and not self.stop_requested:
+            # the fork server (and with it, through PR_SET_PDEATHSIG, every agent) is gone
+            self.unexpected.append(
+                f"the fork server died (exit status {self.fork.proc.returncode}); "
+                "its agents died with it"
+            )
         for ev in self.fork.events():
             if ev["op"] == "spawned":
                 a = self.agents[int(ev["agent"])]
@@ -280,7 +292,7 @@ class Coordinator:
                     directive=int(msg["directive"]),
                     action=d["action"],
                     agent=a.id,
-                    t_node_s=float(msg["t_node"]) - a.offset - (self.t_go or 0.0),
+                    t_node_s=float(msg["t_node"]) - a.offset - self.agent_time_origin(a),
                 )
         elif kind == "failed":
             err = str(msg["error"])
@@ -289,17 +301,29 @@ class Coordinator:
             if err.startswith("diverged") and self.first_diverged is None:
                 self.first_diverged = err
 
+    def refuse(self, ident: bytes, reason: str, **fields: Any) -> None:
+        """Tell a would-be agent no, and record it; a peer already gone is no error."""
+        self.event("hello-refused", reason=reason, **fields)
+        with contextlib.suppress(zmq.ZMQError):
+            self.router.send_multipart(  # type: ignore[union-attr]
+                [ident, encode_control("refuse", reason=reason)], zmq.NOBLOCK
+            )
+
     def on_hello(self, ident: bytes, msg: dict[str, Any]) -> None:
         i = int(msg["agent"])
         if not 0 <= i < self.n:
-            self.router.send_multipart(  # type: ignore[union-attr]
-                [ident, encode_control("refuse", reason=f"agent id {i} is not in 0..{self.n - 1}")]
+            self.refuse(
+                ident,
+                f"agent id {i} is not in 0..{self.n - 1}",
+                agent=i,
+                host=msg["host"],
+                pid=msg["pid"],
             )
             return
         a = self.agents[i]
         if a.ident is not None and not a.dead and not a.restart_pending:
-            self.router.send_multipart(  # type: ignore[union-attr]
-                [ident, encode_control("refuse", reason=f"agent {i} has already joined")]
+            self.refuse(
+                ident, f"agent {i} has already joined", agent=i, host=msg["host"], pid=msg["pid"]
             )
             return
         restart = a.epoch >= 0
@@ -327,6 +351,11 @@ class Coordinator:
         plan = self.swarm.plan(i, a.epoch, start_state=start_state, start_iteration=start_iteration)
         self.send(a, "plan", plan=plan)
         self.ping(a)
+        if restart:  # time-windowed link faults active now apply to the new incarnation too
+            for tf in self.active_timed.values():
+                entry = tf["entries"].get(i)
+                if entry is not None:
+                    self.directive(a, tf, "add", entry)
         if restart:
             self.event(
                 "agent-rejoined",
@@ -366,8 +395,9 @@ class Coordinator:
                     ident, frame = self.router.recv_multipart(zmq.NOBLOCK)
                 except zmq.Again:
                     break
-                except ValueError:
-                    continue  # not a two-frame message: not from one of our agents
+                except ValueError:  # not a two-frame message: not from one of our agents
+                    self.event("envelope-rejected", error="message is not [identity, frame]")
+                    continue
                 self.on_message(ident, frame)
         self.on_fork_events()
 
@@ -399,9 +429,13 @@ class Coordinator:
         self.send(a, "go", start_node=start + a.offset, iteration=a.start_iteration)
 
     # -- telemetry ---------------------------------------------------------------------
+    def agent_time_origin(self, a: _Agent) -> float:
+        """The coordinator-clock time that agent times are counted from (the go time)."""
+        return self.t_go or 0.0
+
     def on_telemetry(self, a: _Agent, msg: dict[str, Any]) -> None:
         rec = a.record
-        t0 = self.t_go or 0.0
+        t0 = self.agent_time_origin(a)
         for s in msg["samples"]:
             rec.samples.append((int(s[0]), float(s[1]) - a.offset - t0, s[2], s[3], s[4], s[5]))
         rec.links = {int(k): {int(e): v for e, v in per.items()} for k, per in msg["links"].items()}
@@ -453,22 +487,26 @@ class Coordinator:
             for e in entries:
                 self.active_faults[int(e["fault"]["index"])] = e["fault"]
 
+    def directive(self, a: _Agent, tf: dict[str, Any], action: str, entry: dict) -> None:
+        self.directive_seq += 1
+        self.directives[self.directive_seq] = {"index": tf["index"], "action": action}
+        self.send(
+            a,
+            "directive",
+            directive=self.directive_seq,
+            action=action,
+            fault={**entry, "index": tf["index"]},
+        )
+
     def link_fault(self, tf: dict[str, Any], action: str) -> None:
         for dst, entry in tf["entries"].items():
-            self.directive_seq += 1
-            self.directives[self.directive_seq] = {"index": tf["index"], "action": action}
-            a = self.agents[int(dst)]
-            self.send(
-                a,
-                "directive",
-                directive=self.directive_seq,
-                action=action,
-                fault={**entry, "index": tf["index"]},
-            )
+            self.directive(self.agents[int(dst)], tf, action, entry)
         if action == "add":
             self.active_faults[tf["index"]] = {"kind": tf["kind"]}
+            self.active_timed[tf["index"]] = tf
         else:
             self.active_faults.pop(tf["index"], None)
+            self.active_timed.pop(tf["index"], None)
         self.event(
             "fault-sent",
             fault=tf["index"],
@@ -646,6 +684,7 @@ class Coordinator:
             "mode": s.mode,
             "seed": s.seed,
             "label": self.opt.label,
+            "engine": self.opt.engine,
             "wall_s": self.clock() - self.t_launch,
             "startup_s": None if self.t_go is None else self.t_go - self.t_launch,
             "run_s": run_s,
@@ -777,4 +816,11 @@ class Coordinator:
 
 def execute(swarm: Swarm, options: RunOptions | None = None) -> RunResult:
     """Run one swarm to the end; the run directory is complete when this returns."""
-    return Coordinator(swarm, options or RunOptions()).execute()
+    options = options or RunOptions()
+    if options.engine == "lockstep":
+        from coordinator._lockstep import execute_lockstep
+
+        return execute_lockstep(swarm, options)
+    if options.engine != "processes":
+        raise RunFailed(f"engine {options.engine!r} is not known; expected processes or lockstep")
+    return Coordinator(swarm, options).execute()

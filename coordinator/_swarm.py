@@ -126,22 +126,23 @@ class Swarm:
 
 
 def _topology(s: Scenario) -> topo.Topology:
-    params = {k: v for k, v in s.topology.items() if k != "shape"}
+    params = {k: v for k, v in s.topology.items() if k not in ("shape", "directed", "file")}
     where = f"{s.source}: [topology]"
+    if s.topology["shape"] == "file":
+        try:
+            t = topo.load(s.topology["file"], directed=s.topology.get("directed"))
+        except ScenarioError as exc:
+            raise ScenarioError(f"{where}.file: {exc}") from None
+        if t.n != s.agents:
+            raise ScenarioError(
+                f"{where}.file: the graph has {t.n} agents; [swarm].agents says {s.agents}"
+            )
+        return t
     try:
-        if s.topology["shape"] == "file":
-            t = topo.load(params["file"], directed=params.get("directed"))
-            if t.n != s.agents:
-                raise ScenarioError(
-                    f"{where}.file: the graph has {t.n} agents; [swarm].agents says {s.agents}"
-                )
-            return t
-        return topo.build(s.topology["shape"], s.agents, seed=s.seed, **params)
+        return topo.build(s.topology["shape"], s.agents, seed=s.seed, where=where, **params)
     except ScenarioError as exc:
         msg = str(exc)
-        if not msg.startswith(s.source):
-            raise ScenarioError(f"{s.source}: {msg}") from None
-        raise
+        raise ScenarioError(msg if msg.startswith(s.source) else f"{s.source}: {msg}") from None
 
 
 def _random_spd(g: np.random.Generator, d: int, condition: float) -> np.ndarray:

@@ -39,6 +39,13 @@ def _parser() -> argparse.ArgumentParser:
     )
     r.add_argument("--list-demos", action="store_true", help="list the built-in demos and exit")
     r.add_argument(
+        "--engine",
+        choices=("processes", "lockstep"),
+        default="processes",
+        help="processes: one OS process per agent (default); lockstep: rounds mode "
+        "in this process with the same agent code, for fast studies",
+    )
+    r.add_argument(
         "--listen",
         metavar="ENDPOINT",
         help="control endpoint to bind, e.g. tcp://0.0.0.0:5570 (agents on other machines join it)",
@@ -91,6 +98,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
         for name, text in list_demos():
             print(f"{name:20s} {text}")
         return 0
+    if args.engine == "lockstep" and (args.listen or args.no_launch):
+        _err("--engine lockstep runs every agent in this process: no --listen, no --no-launch")
+        return EXIT_SCENARIO
     target = args.scenario or DEFAULT_DEMO
     try:
         swarm = load(target)
@@ -100,6 +110,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     except FileNotFoundError as exc:
         _err(f"{target}: no such scenario file or demo ({exc.strerror})")
         return EXIT_SCENARIO
+    if args.engine == "lockstep":
+        from coordinator._lockstep import check_lockstep
+
+        try:
+            check_lockstep(swarm)
+        except ScenarioError as exc:
+            _err(str(exc))
+            return EXIT_SCENARIO
     console = Console(stderr=True)
     view = None if args.quiet else LiveView(console)
     try:
@@ -110,6 +128,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
             view=view,
             baseline=args.baseline,
             launch_local=not args.no_launch,
+            engine=args.engine,
             listen=args.listen,
             heartbeat_timeout=args.heartbeat_timeout,
         )

@@ -33,7 +33,7 @@ from node._lifecycle import Lifecycle, Phase
 from node._objectives import objective_from_spec
 from node._receiver import Receiver
 from node._rng import agent_generator
-from node._wire import decode_control, encode_control, encode_probe
+from node._wire import MAX_DATA_FRAME, decode_control, encode_control, encode_probe
 
 __all__ = ["BATCH_LIMIT", "Node", "main", "receive_batch", "spec_from_plan"]
 
@@ -248,7 +248,9 @@ class Node:
         self.sub = self.ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, int(plan.get("hwm", 100000)))
-        self.sub.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+        # Generous on purpose: at the limit libzmq drops the connection for good, while the
+        # codec refuses (and counts) any frame above MAX_DATA_FRAME and keeps the link.
+        self.sub.setsockopt(zmq.MAXMSGSIZE, 64 * MAX_DATA_FRAME)
         self.sub.setsockopt(zmq.SUBSCRIBE, b"")
         self._sub_poller = zmq.Poller()
         self._sub_poller.register(self.sub, zmq.POLLIN)
