@@ -126,7 +126,8 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
     assert ev[-1]["event"] == "stop" and names.count("crash") == 1
     assert "agent-lost" not in names and "agent-failed" not in names, names
     assert crash["agent"] == k and crash["epoch"] == 0 and crash["signal"] == "SIGKILL"
-    assert t_crash <= crash["t_s"] < t_crash + 0.2, crash
+    # on time, give or take the coordinator's loop on a loaded machine (up to 0.2 s seen)
+    assert t_crash <= crash["t_s"] < t_crash + 0.5, crash
     assert restart["t_s"] >= crash["t_s"] + down, (crash, restart)
 
     # the killed process really was gone, and the new one ran
