@@ -103,7 +103,7 @@ def test_outage_by_time_window_in_async_mode(processes, tmp_path):
     # node tests the fault's own window on its clock too, so the outage is exactly
     # [max(start, applied), end) there.
     t_applied = applied[0]["t_node_s"]
-    assert t_on <= t_applied < t_on + 0.25, f"the outage was applied at {t_applied:.3f} s"
+    assert t_on <= t_applied < t_on + 0.5, f"the outage was applied at {t_applied:.3f} s"
     eff_on = max(t_on, t_applied)
 
     # Every message agent 0 published, with its send time: in async mode message seq k is

@@ -188,8 +188,10 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
             + row["in_flight"]
         ), (link, row)
 
-    # and the run kept its time budget of 2 s (the restart does not start a new one)
-    assert ev[-1]["t_s"] < 2.0 + 0.5, f"stopped at {ev[-1]['t_s']:.2f} s for a 2 s budget"
+    # and the run kept its time budget of 2 s: the restart does not start a new one for
+    # the new incarnation (its last step is at the budget, give or take a period or two)
+    last = max(t for _ep, _it, t, _x in new)
+    assert last < 2.0 + 0.25, f"agent {k} stepped until {last:.2f} s of a 2 s budget"
 
 
 def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
@@ -276,15 +278,15 @@ def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
 
 def test_link_fault_windows_hold_across_a_restart(processes, tmp_path):
     """A restarted agent keeps the run's clock for its in-link faults: one armed from the
-    start (outage 1 -> 2 over [0, 1.4) s) and one sent as a directive (outage 3 -> 2 over
-    [0.2, 1.4) s) both still hold when it comes back at about 0.75 s, and both end at 1.4 s."""
-    k, t_end, period_ms = 2, 1.4, 2.0
-    sc = base("restart-windows", agents=4, mode="async", seconds=2.0)
+    start (outage 1 -> 2 over [0, 1.8) s) and one sent as a directive (outage 3 -> 2 over
+    [0.2, 1.8) s) both still hold when it comes back at about 0.75 s, and both end at 1.8 s."""
+    k, t_end, period_ms, seconds = 2, 1.8, 2.0, 2.5
+    sc = base("restart-windows", agents=4, mode="async", seconds=seconds)
     sc["timing"] = {"period_ms": period_ms, "jitter": 0.1}
     sc["telemetry"] = {"batch_ms": 10.0}
     sc["fault"] = [
         {"kind": "outage", "links": {"from": 1, "to": k}, "start_s": 0.0, "duration_s": t_end},
-        {"kind": "outage", "links": {"from": 3, "to": k}, "start_s": 0.2, "duration_s": 1.2},
+        {"kind": "outage", "links": {"from": 3, "to": k}, "start_s": 0.2, "duration_s": 1.6},
         {
             "kind": "crash",
             "agents": [k],
@@ -310,7 +312,7 @@ def test_link_fault_windows_hold_across_a_restart(processes, tmp_path):
         final = in_counters(final_report(run_dir, k, epoch=1), src)
         if final["dropped_injected"] == 0:
             problems.append(f"{src} -> {k}: nothing dropped after the restart")
-        if after[-1] - max(inside) < PROGRESS * (2.0 - t_end) / (period_ms / 1e3):
+        if after[-1] - max(inside) < PROGRESS * (seconds - t_end) / (period_ms / 1e3):
             problems.append(
                 f"{src} -> {k}: delivery did not resume after the outage ended "
                 f"({max(inside)} delivered before {t_end} s, {after[-1]} at the end)"
