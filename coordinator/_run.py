@@ -90,6 +90,9 @@ class _Agent:
     restart_pending: bool = False
     restart_state: str = "initial"
     start_iteration: int = 0
+    ready_at: float = 0.0
+    #: (sender, epoch) pairs this agent reported hearing after a peer restarted
+    heard: set[tuple[int, int]] = field(default_factory=set)
     pings: dict[int, float] = field(default_factory=dict)
     rtt_best: float = float("inf")
     offset: float = 0.0
@@ -131,6 +134,8 @@ class Coordinator:
         self.directive_seq = 0
         self.directives: dict[int, dict[str, Any]] = {}
         self.timeline: list[tuple[float, int, str, Callable[[], None]]] = []
+        #: iteration-triggered process faults: (agent, iteration, "own" | "others", action)
+        self.triggers: list[tuple[int, int, str, Callable[[], None]]] = []
         self.unexpected: list[str] = []
         self.pending_peer_updates: list[int] = []
         out = options.out or RunDir.default_path(self.s.name, options.runs_root)
@@ -272,8 +277,9 @@ class Coordinator:
                 self.ping(a)
         elif kind == "ready":
             a.ready = True
-            if self.t_go is not None and not a.running:
-                self.go(a)
+            a.ready_at = self.clock()
+        elif kind == "heard":
+            a.heard.add((int(msg["sender"]), int(msg["epoch"])))
         elif kind == "tel":
             self.on_telemetry(a, msg)
         elif kind == "final":
@@ -351,11 +357,7 @@ class Coordinator:
         plan = self.swarm.plan(i, a.epoch, start_state=start_state, start_iteration=start_iteration)
         self.send(a, "plan", plan=plan)
         self.ping(a)
-        if restart:  # time-windowed link faults active now apply to the new incarnation too
-            for tf in self.active_timed.values():
-                entry = tf["entries"].get(i)
-                if entry is not None:
-                    self.directive(a, tf, "add", entry)
+
         if restart:
             self.event(
                 "agent-rejoined",
@@ -423,10 +425,27 @@ class Coordinator:
                 raise _Stop(f"agents {missing} were not ready after {timeout:.0f} s", 3)
 
     def go(self, a: _Agent) -> None:
+        """Start an agent on the run's common clock (a restarted one joins the running clock:
+        its time budget and the time windows of faults still count from the run's start)."""
         assert self.t_go is not None
-        start = max(self.t_go, self.clock())
         a.running = True
-        self.send(a, "go", start_node=start + a.offset, iteration=a.start_iteration)
+        if a.epoch > 0:
+            # Time-windowed link faults active now apply to the new incarnation; sent before
+            # go so that they hold for the very first message it handles.
+            for tf in self.active_timed.values():
+                entry = tf["entries"].get(a.id)
+                if entry is not None:
+                    self.directive(a, tf, "add", entry)
+        self.send(a, "go", start_node=self.t_go + a.offset, iteration=a.start_iteration)
+
+    def restart_ready(self, a: _Agent) -> bool:
+        """A restarted agent may go once every live out-neighbour hears its new incarnation
+        (else its first messages are lost to slow joiners), or after a grace period."""
+        waiting = [
+            j for j in self.swarm.topology.out_neighbours(a.id)
+            if not self.agents[j].dead and (a.id, a.epoch) not in self.agents[j].heard
+        ]
+        return not waiting or self.clock() - a.ready_at > 2.0
 
     # -- telemetry ---------------------------------------------------------------------
     def agent_time_origin(self, a: _Agent) -> float:
@@ -466,6 +485,9 @@ class Coordinator:
                     tf["until_s"], "link-fault-off", lambda tf=tf: self.link_fault(tf, "remove")
                 )
         for pf in self.swarm.process_faults:
+            if pf.get("start_iteration") is not None or pf.get("duration_iterations") is not None:
+                self.iteration_faults(pf)
+                continue
             start = float(pf.get("start_s") or 0.0)
             dur = pf.get("duration_s")
             for i in pf["agents"]:
@@ -486,6 +508,53 @@ class Coordinator:
         for entries in self.swarm.armed_faults.values():
             for e in entries:
                 self.active_faults[int(e["fault"]["index"])] = e["fault"]
+
+    def iteration_faults(self, pf: dict[str, Any]) -> None:
+        """Process faults given in iterations fire when telemetry shows the iteration reached.
+
+        The agent's own iteration starts it (and ends a slowdown); a paused agent does not
+        iterate, so a pause ends when the median iteration of the other agents has moved on
+        by its duration. Telemetry arrives in batches, so the action can come a batch late;
+        events.jsonl records when it really happened.
+        """
+        start = int(pf.get("start_iteration") or 0)
+        dur = pf.get("duration_iterations")
+        for i in pf["agents"]:
+            if pf["kind"] == "crash":
+                self.triggers.append((i, start, "own", lambda i=i, pf=pf: self.crash(i, pf)))
+            elif pf["kind"] == "pause":
+                self.triggers.append((i, start, "own", lambda i=i, pf=pf: self.pause(i, pf, True)))
+                self.triggers.append((i, start + int(dur), "others",
+                                      lambda i=i, pf=pf: self.pause(i, pf, False)))
+            elif pf["kind"] == "slow":
+                factor = float(pf["params"]["factor"])
+                self.triggers.append((i, start, "own",
+                                      lambda i=i, f=factor, pf=pf: self.slow(i, pf, f)))
+                if dur is not None:
+                    self.triggers.append((i, start + int(dur), "own",
+                                          lambda i=i, pf=pf: self.slow(i, pf, 1.0)))
+
+    def latest_iteration(self, i: int) -> int:
+        a = self.agents[i]
+        r = a.records[-1] if a.records else None
+        return int(r.samples[-1][0]) if r is not None and r.samples else -1
+
+    def fire_triggers(self) -> None:
+        if not self.triggers:
+            return
+        keep = []
+        for trig in self.triggers:
+            i, at, whose, action = trig
+            if whose == "own":
+                reached = self.latest_iteration(i) >= at
+            else:
+                others = [self.latest_iteration(j) for j in range(self.n) if j != i]
+                reached = bool(others) and float(np.median(others)) >= at
+            if reached:
+                action()
+            else:
+                keep.append(trig)
+        self.triggers = keep
 
     def directive(self, a: _Agent, tf: dict[str, Any], action: str, entry: dict) -> None:
         self.directive_seq += 1
@@ -585,6 +654,10 @@ class Coordinator:
             while self.timeline and self.timeline[0][0] <= t:
                 _, _, _what, action = self.timeline.pop(0)
                 action()
+            self.fire_triggers()
+            for a in self.agents:
+                if a.ready and not a.running and not a.dead and self.restart_ready(a):
+                    self.go(a)
             if self.view is not None:
                 self.view(self)
             if self.stop_requested:

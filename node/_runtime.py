@@ -33,7 +33,7 @@ from node._lifecycle import Lifecycle, Phase
 from node._objectives import objective_from_spec
 from node._receiver import Receiver
 from node._rng import agent_generator
-from node._wire import MAX_DATA_FRAME, decode_control, encode_control, encode_probe
+from node._wire import MAX_DATA_FRAME, PROBE, decode_control, encode_control, encode_probe
 
 __all__ = ["BATCH_LIMIT", "Node", "main", "receive_batch", "spec_from_plan"]
 
@@ -145,6 +145,10 @@ class Node:
         self.slow_factor = 1.0
         self.start_node = 0.0
         self.directives_pending: list[dict[str, Any]] = []
+        #: restarted in-neighbours to report as heard: sender -> epoch
+        self.to_report: dict[int, int] = {}
+        #: data frames that arrived before go, with their arrival times
+        self.early: list[tuple[bytes, float]] = []
 
     # -- control channel ---------------------------------------------------------------
     def send_ctl(self, kind: str, **fields: Any) -> bool:
@@ -272,7 +276,11 @@ class Node:
             if link is None:
                 continue
             endpoint, epoch = str(entry[0]), int(entry[1])
-            link.set_epoch(epoch)
+            if epoch > link.epoch:
+                link.set_epoch(epoch)
+                if epoch > 0:  # a restart: say so once the new incarnation is heard
+                    link.heard = False
+                    self.to_report[j] = epoch
             old = self.connected.get(j)
             if old != endpoint:
                 if old is not None:
@@ -323,7 +331,16 @@ class Node:
             ]
         )
 
+    def report_heard(self) -> None:
+        for j, epoch in list(self.to_report.items()):
+            link = self.inlinks[j]
+            if link.heard and link.epoch == epoch:
+                if self.send_ctl("heard", sender=j, epoch=epoch):
+                    del self.to_report[j]
+
     def flush(self) -> None:
+        if self.to_report:
+            self.report_heard()
         if not self.samples:
             return
         ok = self.send_ctl(
@@ -335,6 +352,29 @@ class Node:
             self.telemetry_dropped += 1
 
     # -- main phases -------------------------------------------------------------------
+    def take_early(self, now: float) -> None:
+        """Before go: probes are handled; data frames (a restarted agent's running
+        neighbours) show who is heard and wait for go, when the fault clock is known."""
+        assert self.sub is not None
+        rx = self.rx
+        while True:
+            try:
+                frame = self.sub.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            try:
+                kind, sender, epoch, *_ = rx.layout.decode(frame)
+            except WireError:
+                rx.on_frame(frame, now)  # counted as refused, unattributed
+                continue
+            link = rx.inlinks.get(sender)
+            if kind == PROBE or link is None:
+                rx.on_frame(frame, now)
+                continue
+            if epoch >= link.epoch:
+                link.heard = True
+            self.early.append((frame, now))
+
     def handshake(self) -> None:
         self.send_ctl(
             "hello", agent=self.agent, host=socket.gethostname(), pid=os.getpid(), version=VERSION
@@ -360,7 +400,7 @@ class Node:
                 next_probe = now + 0.003
             events = dict(poller.poll(3))
             if self.sub in events:
-                self.drain(now)
+                self.take_early(now)
             if not ready_sent and self.rx.all_heard():
                 self.send_ctl("ready")
                 ready_sent = True
@@ -374,6 +414,11 @@ class Node:
                     elif msg["t"] == "go":
                         self.start_node = float(msg["start_node"])
                         self.rx.start = self.start_node
+                        # data that came before go is handled now that the run's clock is
+                        # known (fault windows count from it), with its arrival times
+                        early, self.early = self.early, []
+                        for frame, t in early:
+                            self.rx.on_frame(frame, t)
                         self.iteration = int(msg["iteration"])
                         return
                     elif msg["t"] == "stop":

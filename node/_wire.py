@@ -342,6 +342,7 @@ CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
     "pong": {"seq": int, "t_coord": _NUM, "t_node": _NUM},
     "tel": {"samples": list, "links": dict, "counters": dict},
     "ack": {"directive": int, "t_node": _NUM},
+    "heard": {"sender": int, "epoch": int},
     "final": {"state": dict, "iteration": int, "links": dict, "counters": dict, "reason": str},
     "failed": {"error": str},
     # coordinator -> agent

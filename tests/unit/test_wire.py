@@ -407,6 +407,7 @@ CONTROL_SAMPLES: dict[str, dict[str, Any]] = {
         "counters": {"sent": 1, "age": 0.0},
     },
     "ack": {"directive": 1, "t_node": 2.5},
+    "heard": {"sender": 3, "epoch": 1},
     "final": {
         "state": {"x": [0.5, 0.25]},
         "iteration": 100,
