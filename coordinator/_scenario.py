@@ -164,6 +164,7 @@ _ALGORITHM_KEYS = (
     "step_rule",
     "average_priorities",
     "module",
+    "params",
 )
 _STEP_KEYS = ("rule", "step", "scale", "power")
 _AGENT_KEYS = ("id", "target", "curvature", "initial_state", "initial_priorities", "speed")
@@ -623,7 +624,7 @@ def _algorithm(t: _Table) -> dict[str, Any]:
     out: dict[str, Any] = {"name": name, "step": _step(t, "step")}
     # Algorithm-specific keys pass through unchanged; their defaults belong to the algorithm.
     for key in _ALGORITHM_KEYS[2:]:
-        if key not in t.data or key == "module":
+        if key not in t.data or key in ("module", "params"):
             continue
         if key in ("missing", "mode"):
             out[key] = t.string(key, None, "a string")
@@ -644,6 +645,15 @@ def _algorithm(t: _Table) -> dict[str, Any]:
             out[key] = value
     if module is not None:
         out["module"] = module
+    if "params" in t.data:
+        # free-form options of a user's algorithm: plain scalars, handed to it unchanged
+        raw = t.data["params"]
+        if not isinstance(raw, dict):
+            t.fail("params", f"expected a table of options, got {_show(raw)}")
+        for k, v in raw.items():
+            if not isinstance(v, bool | int | float | str):
+                t.fail(f"params.{k}", f"expected a number, a string or a boolean, got {_show(v)}")
+        out["params"] = dict(raw)
     return out
 
 
@@ -1359,6 +1369,11 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "[algorithm].module",
             "absent",
             "dotted module every agent imports to register a custom algorithm",
+        ),
+        (
+            "[algorithm].params",
+            "absent",
+            "table of options (numbers, strings, booleans) handed unchanged to the algorithm",
         ),
         ("[timing].period_ms", _lit(D["timing"]["period_ms"]), "async mode: iteration period, > 0"),
         (

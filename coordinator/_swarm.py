@@ -6,6 +6,7 @@ with one purpose number per kind of draw, so a seed fixes the whole swarm.
 
 from __future__ import annotations
 
+import importlib
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -251,6 +252,14 @@ def _faults(s: Scenario, top: topo.Topology) -> tuple[dict, list, list]:
 def build_swarm(s: Scenario) -> Swarm:
     """Resolve a validated scenario into a swarm; raises ScenarioError naming the key."""
     top = _topology(s)
+    if s.algorithm.get("module"):
+        # the user's module registers its algorithm here too, as it will in every agent
+        try:
+            importlib.import_module(s.algorithm["module"])
+        except ImportError as exc:
+            raise ScenarioError(
+                f"{s.source}: [algorithm].module: cannot import {s.algorithm['module']!r}: {exc}"
+            ) from None
     cls = algorithm_class(s.algorithm["name"])
     if top.directed and not cls.directed_ok:
         raise ScenarioError(
@@ -286,7 +295,10 @@ def build_swarm(s: Scenario) -> Swarm:
                 weights[i, j] = 1.0 / (len(ins) + 1)
     else:
         weights = topo.metropolis_weights(top)
-    params = {k: v for k, v in s.algorithm.items() if k not in ("name", "step", "module")}
+    params = {
+        k: v for k, v in s.algorithm.items() if k not in ("name", "step", "module", "params")
+    }
+    params.update(s.algorithm.get("params", {}))
     if cls.uses_priorities:
         gain = pr.get("gain")
         bound = topo.laplacian_step_bound(top)
