@@ -48,7 +48,8 @@ class RunOptions:
     #: the run directory itself; default runs/<name>-<UTC timestamp>
     out: Path | None = None
     runs_root: Path = Path("runs")
-    #: "live" (rich live view), "quiet" (nothing), or a callable getting snapshots
+    #: None (nothing shown) or a callable given the coordinator a few times a second
+    #: (coordinator._view.LiveView renders the live view)
     view: Any = None
     #: control endpoint to bind; tcp://127.0.0.1:* by default
     listen: str | None = None
