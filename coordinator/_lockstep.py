@@ -113,24 +113,8 @@ class _Member(Node):
 
     def __init__(self, agent: int, deliver: Callable[[int, bytes], None], clock: Any) -> None:
         # Not Node.__init__: it opens a ZeroMQ context and a control socket.
-        self.join = "lockstep"
-        self.agent = agent
-        self.clock = clock
-        self.heartbeat_timeout = math.inf
-        self.life = Lifecycle()
-        self.ctx = self.ctl = self.pub = self.sub = None  # type: ignore[assignment]
-        self.last_ctl = clock()
-        self.epoch = 0
-        self.refused_control = 0
-        self.telemetry_dropped = 0
-        self.sent = 0
-        self.seq = 0
-        self.iteration = 0
-        self.samples: list[list[Any]] = []
-        self.stop_reason: str | None = None
-        self.slow_factor = 1.0
-        self.start_node = 0.0
-        self.directives_pending: list[dict[str, Any]] = []
+        self.init_fields("lockstep", agent, math.inf, clock)
+        self.ctx = self.ctl = None  # type: ignore[assignment]
         self._deliver = deliver
         #: the run is over for this agent (final report sent, or failed)
         self.done = False

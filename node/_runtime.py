@@ -121,16 +121,20 @@ class Node:
         heartbeat_timeout: float = 3.0,
         clock: Any = time.monotonic,
     ) -> None:
-        self.join = join
-        self.agent = agent
-        self.clock = clock
-        self.heartbeat_timeout = heartbeat_timeout
-        self.life = Lifecycle()
+        self.init_fields(join, agent, heartbeat_timeout, clock)
         self.ctx = zmq.Context()
         self.ctl = self.ctx.socket(zmq.DEALER)
         self.ctl.setsockopt(zmq.LINGER, 0)
         self.ctl.setsockopt(zmq.SNDHWM, 100000)
         self.ctl.connect(join)
+
+    def init_fields(self, join: str, agent: int, heartbeat_timeout: float, clock: Any) -> None:
+        """Everything but the sockets (the lockstep engine builds nodes without them)."""
+        self.join = join
+        self.agent = agent
+        self.clock = clock
+        self.heartbeat_timeout = heartbeat_timeout
+        self.life = Lifecycle()
         self.pub: zmq.Socket | None = None
         self.sub: zmq.Socket | None = None
         self.last_ctl = clock()
@@ -144,7 +148,6 @@ class Node:
         self.stop_reason: str | None = None
         self.slow_factor = 1.0
         self.start_node = 0.0
-        self.directives_pending: list[dict[str, Any]] = []
         #: restarted in-neighbours to report as heard: sender -> epoch
         self.to_report: dict[int, int] = {}
         #: data frames that arrived before go, with their arrival times
