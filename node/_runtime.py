@@ -510,10 +510,13 @@ class Node:
             # Barrier: a message of iteration >= k from every awaited in-neighbour. Block in
             # one poll on both sockets (no busy wake-ups: 32 agents share two cores).
             t0 = self.clock()
+            given_up = False
             while True:
                 missing = False
                 for link in awaited:
-                    if not link.stale and link.last_iter < k:
+                    if link.stale:
+                        given_up = True
+                    elif link.last_iter < k:
                         missing = True
                         break
                 if not missing:
@@ -523,6 +526,7 @@ class Node:
                     for link in awaited:
                         if not link.stale and link.last_iter < k:
                             link.stale = True
+                    given_up = True
                     break
                 events = poller.poll(min(left, 0.25) * 1000.0)
                 if not events and self.coordinator_lost():
@@ -535,9 +539,10 @@ class Node:
                     elif self.control_tick():
                         return state, self.stop_reason or "coordinator lost"
             now = self.clock()
-            # Take in whatever else is queued, so that a neighbour given up on (stale) is
-            # heard again as soon as it speaks, even when nobody is awaited this round.
-            self.drain(now)
+            if given_up:
+                # Take in whatever else is queued, so that a neighbour given up on (stale) is
+                # heard again as soon as it speaks, even when nobody is awaited this round.
+                self.drain(now)
             self.rx.release(float(k), now)
             state, out = self.algorithm.step(state, self.rx.inbox(), k)
             self.iteration = k + 1
