@@ -69,7 +69,7 @@ def _sender(
 ) -> None:
     from node._wire import DataLayout
 
-    encode_data = DataLayout({"x": 2}).encode
+    encode = DataLayout({"x": 2}).encoder(0, 0)  # what an agent's publish uses
     ctx = zmq.Context()
     pub = ctx.socket(zmq.PUB)
     pub.setsockopt(zmq.SNDHWM, 0)
@@ -84,7 +84,7 @@ def _sender(
     if encode:
         clock = time.monotonic
         for seq in range(count):
-            send(encode_data(0, 0, seq, seq, clock(), payload))
+            send(encode(seq, seq, clock(), payload))
     else:
         assert frames is not None
         frame = frames[0]

@@ -51,7 +51,7 @@ from coordinator._metrics import AgentRecord
 from coordinator._run import VERSION, Coordinator, RunFailed, RunOptions, RunResult, _Agent, _Stop
 from coordinator._swarm import LINK_FAULTS, PROCESS_FAULTS, Swarm
 from node._algorithm import Algorithm, algorithm_class
-from node._lifecycle import Lifecycle, Phase
+from node._lifecycle import Phase
 from node._receiver import Receiver
 from node._rng import agent_generator
 from node._runtime import Node, _Diverged, _import_modules, spec_from_plan
@@ -154,6 +154,7 @@ class _Member(Node):
             period_s=self.period,
         )
         self.inlinks = self.rx.inlinks
+        self._encode = self.rx.layout.encoder(self.agent, self.epoch)
         for entry in plan.get("faults", []):
             self.rx.add_fault(entry)
 

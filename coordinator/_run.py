@@ -443,7 +443,8 @@ class Coordinator:
         """A restarted agent may go once every live out-neighbour hears its new incarnation
         (else its first messages are lost to slow joiners), or after a grace period."""
         waiting = [
-            j for j in self.swarm.topology.out_neighbours(a.id)
+            j
+            for j in self.swarm.topology.out_neighbours(a.id)
             if not self.agents[j].dead and (a.id, a.epoch) not in self.agents[j].heard
         ]
         return not waiting or self.clock() - a.ready_at > 2.0
@@ -525,15 +526,18 @@ class Coordinator:
                 self.triggers.append((i, start, "own", lambda i=i, pf=pf: self.crash(i, pf)))
             elif pf["kind"] == "pause":
                 self.triggers.append((i, start, "own", lambda i=i, pf=pf: self.pause(i, pf, True)))
-                self.triggers.append((i, start + int(dur), "others",
-                                      lambda i=i, pf=pf: self.pause(i, pf, False)))
+                self.triggers.append(
+                    (i, start + int(dur), "others", lambda i=i, pf=pf: self.pause(i, pf, False))
+                )
             elif pf["kind"] == "slow":
                 factor = float(pf["params"]["factor"])
-                self.triggers.append((i, start, "own",
-                                      lambda i=i, f=factor, pf=pf: self.slow(i, pf, f)))
+                self.triggers.append(
+                    (i, start, "own", lambda i=i, f=factor, pf=pf: self.slow(i, pf, f))
+                )
                 if dur is not None:
-                    self.triggers.append((i, start + int(dur), "own",
-                                          lambda i=i, pf=pf: self.slow(i, pf, 1.0)))
+                    self.triggers.append(
+                        (i, start + int(dur), "own", lambda i=i, pf=pf: self.slow(i, pf, 1.0))
+                    )
 
     def latest_iteration(self, i: int) -> int:
         a = self.agents[i]

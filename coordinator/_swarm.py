@@ -295,9 +295,7 @@ def build_swarm(s: Scenario) -> Swarm:
                 weights[i, j] = 1.0 / (len(ins) + 1)
     else:
         weights = topo.metropolis_weights(top)
-    params = {
-        k: v for k, v in s.algorithm.items() if k not in ("name", "step", "module", "params")
-    }
+    params = {k: v for k, v in s.algorithm.items() if k not in ("name", "step", "module", "params")}
     params.update(s.algorithm.get("params", {}))
     if cls.uses_priorities:
         gain = pr.get("gain")

@@ -239,6 +239,7 @@ class Node:
             period_s=self.period,
         )
         self.inlinks = self.rx.inlinks
+        self._encode = self.rx.layout.encoder(self.agent, self.epoch)
         for entry in plan.get("faults", []):
             self.rx.add_fault(entry)
         self.pub = self.ctx.socket(zmq.PUB)
@@ -295,9 +296,7 @@ class Node:
     # -- data plane --------------------------------------------------------------------
     def publish(self, payload: Mapping[str, np.ndarray], iteration: int) -> None:
         assert self.pub is not None
-        frame = self.rx.layout.encode(
-            self.agent, self.epoch, self.seq, iteration, self.clock(), payload
-        )
+        frame = self._encode(self.seq, iteration, self.clock(), payload)
         self.seq += 1
         self.sent += 1
         try:
@@ -337,9 +336,8 @@ class Node:
     def report_heard(self) -> None:
         for j, epoch in list(self.to_report.items()):
             link = self.inlinks[j]
-            if link.heard and link.epoch == epoch:
-                if self.send_ctl("heard", sender=j, epoch=epoch):
-                    del self.to_report[j]
+            if link.heard and link.epoch == epoch and self.send_ctl("heard", sender=j, epoch=epoch):
+                del self.to_report[j]
 
     def flush(self) -> None:
         if self.to_report:
