@@ -179,15 +179,23 @@ def message_path(
     return out
 
 
-def bench(quick: bool = False) -> dict[str, Any]:
-    """Every figure of ``swarmrig bench`` (``quick``: smaller sizes, for a smoke test)."""
+def _median(values: list[float]) -> float:
+    return float(np.median(values))
+
+
+def bench(quick: bool = False, repeats: int = 3) -> dict[str, Any]:
+    """Every figure of ``swarmrig bench`` (``quick``: smaller sizes, for a smoke test).
+
+    Each figure is the median of ``repeats`` measurements, all of which are reported too:
+    on a small shared machine one measurement alone can be off by a factor of two. The raw
+    and the node message paths are measured alternately, so that both see the same machine.
+    """
     sizes = (8, 16) if quick else (32, 64, 128)
     rounds = 300 if quick else 4000
     count = 50_000 if quick else 1_000_000
-    spawn = {n: spawn_time(n) for n in sizes}
-    rates = {n: rounds_rate(n, rounds) for n in (8, 32)}
-    raw = message_path(count, node_path=False)
-    node = message_path(count, node_path=True)
+    reps = 1 if quick else repeats
+    spawn_all = {n: [spawn_time(n) for _ in range(reps)] for n in sizes}
+    rates_all = {n: [rounds_rate(n, rounds) for _ in range(reps)] for n in (8, 32)}
     loss = {
         "index": 0,
         "kind": "loss",
@@ -197,21 +205,38 @@ def bench(quick: bool = False) -> dict[str, Any]:
         "start_iteration": None,
         "end_iteration": None,
     }
-    faulty = message_path(count, node_path=True, fault=loss)
-    per_msg_us = (1.0 / faulty["msgs_per_s"] - 1.0 / node["msgs_per_s"]) * 1e6
+    raw_all, node_all, fault_all = [], [], []
+    node = faulty = None
+    for _ in range(reps):
+        raw_all.append(message_path(count, node_path=False)["msgs_per_s"])
+        node = message_path(count, node_path=True)
+        node_all.append(node["msgs_per_s"])
+        faulty = message_path(count, node_path=True, fault=loss)
+        fault_all.append(faulty["msgs_per_s"])
+    assert node is not None and faulty is not None
+    raw_m, node_m, fault_m = _median(raw_all), _median(node_all), _median(fault_all)
     return {
-        "spawn_s": spawn,
-        "rounds_iterations_per_s": rates,
+        "spawn_s": {n: _median(v) for n, v in spawn_all.items()},
+        "rounds_iterations_per_s": {n: _median(v) for n, v in rates_all.items()},
         "rounds_iterations": rounds,
-        "message_path_msgs_per_s": node["msgs_per_s"],
-        "raw_zmq_msgs_per_s": raw["msgs_per_s"],
-        "message_path_ratio": node["msgs_per_s"] / raw["msgs_per_s"],
-        "message_path": node,
+        "message_path_msgs_per_s": node_m,
+        "raw_zmq_msgs_per_s": raw_m,
+        "message_path_ratio": node_m / raw_m,
+        "message_path": {**node, "msgs_per_s": node_m},
         "fault_layer": {
             "fault": "loss rate 0.01 on the link",
             **faulty,
-            "extra_us_per_message": per_msg_us,
+            "msgs_per_s": fault_m,
+            "extra_us_per_message": (1.0 / fault_m - 1.0 / node_m) * 1e6,
         },
+        "samples": {
+            "spawn_s": spawn_all,
+            "rounds_iterations_per_s": rates_all,
+            "raw_zmq_msgs_per_s": raw_all,
+            "message_path_msgs_per_s": node_all,
+            "fault_layer_msgs_per_s": fault_all,
+        },
+        "repeats": reps,
         "cpus": os.cpu_count(),
     }
 
@@ -220,7 +245,7 @@ def print_bench(res: dict[str, Any]) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    t = Table(title="swarmrig bench", show_header=True)
+    t = Table(title=f"swarmrig bench (median of {res['repeats']})", show_header=True)
     t.add_column("measure")
     t.add_column("value", justify="right")
     for n, s in res["spawn_s"].items():
