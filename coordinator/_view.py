@@ -117,13 +117,42 @@ class LiveView:
         shown = rows if len(rows) <= 24 else rows[:12] + rows[-12:]
         for row in shown:
             tab.add_row(*("-" if v is None else str(v) for v in row))
-        parts: list[Any] = [head, tab]
+        parts: list[Any] = [head, tab, self.link_health(coord)]
         if coord.active_faults:
             kinds = ", ".join(
                 f"#{k} {v.get('kind', '?')}" for k, v in sorted(coord.active_faults.items())
             )
             parts.append(Text(f"faults armed/active: {kinds}", style="yellow"))
         return Panel(Group(*parts), title="swarmrig", border_style="blue")
+
+    @staticmethod
+    def link_health(coord: Any) -> Text:
+        """The links' state from the receivers' latest counters: how many carry, how many
+        drop (injected), lose (transport) or refuse, and the worst ones by share not delivered."""
+        rows = []
+        for a in coord.agents:
+            r = a.records[-1] if a.records else None
+            if r is None:
+                continue
+            for src, per in r.links.items():
+                # received counts what was dropped or refused; lost never arrived at all
+                seen = sum(row[0] + row[5] for row in per.values())
+                bad = sum(row[2] + row[3] + row[5] for row in per.values())
+                if seen:
+                    rows.append((bad / seen, src, a.id, seen, bad))
+        if not rows:
+            return Text("links: no traffic yet", style="dim")
+        healthy = sum(1 for share, *_ in rows if share == 0.0)
+        worst = sorted(rows, reverse=True)[:4]
+        text = Text(f"links: {healthy}/{len(rows)} clean")
+        hurt = [w for w in worst if w[0] > 0]
+        if hurt:
+            text.append("   worst: ", style="bold")
+            text.append(
+                ", ".join(f"{s}→{d} {share:.0%} not delivered" for share, s, d, _, _ in hurt),
+                style="red",
+            )
+        return text
 
 
 def summary_table(summary: dict[str, Any]) -> Table:
