@@ -38,23 +38,24 @@ from __future__ import annotations
 import getpass
 import math
 import os
-import platform
 import socket
 import time
 from collections.abc import Callable, Mapping
 from typing import Any
 
-import numpy as np
-import zmq
-
 from coordinator._metrics import AgentRecord
-from coordinator._run import VERSION, Coordinator, RunFailed, RunOptions, RunResult, _Agent, _Stop
+from coordinator._run import (
+    Coordinator,
+    RunFailed,
+    RunOptions,
+    RunResult,
+    _Agent,
+    _Stop,
+    run_versions,
+)
 from coordinator._swarm import LINK_FAULTS, PROCESS_FAULTS, Swarm
-from node._algorithm import Algorithm, algorithm_class
 from node._lifecycle import Phase
-from node._receiver import Receiver
-from node._rng import agent_generator
-from node._runtime import Node, _Diverged, _import_modules, spec_from_plan
+from node._runtime import Node, _Diverged
 from node._wire import encode_control
 from topologies._errors import ScenarioError
 
@@ -125,38 +126,7 @@ class _Member(Node):
 
     def setup(self, plan: Mapping[str, Any]) -> None:
         """What Node.setup builds from a plan, without the data sockets."""
-        _import_modules(list(plan.get("modules", [])))
-        self.plan = plan
-        self.epoch = int(plan["epoch"])
-        self.spec = spec_from_plan(plan)
-        self.algorithm: Algorithm = algorithm_class(plan["algorithm"]["name"])(self.spec)
-        self.sizes = dict(self.algorithm.payload_sizes())
-        self.mode = plan["mode"]
-        self.iterations = plan.get("iterations")
-        self.seconds = plan.get("seconds")
-        t = plan["timing"]
-        self.period = float(t["period_ms"]) / 1000.0
-        self.jitter = float(t["jitter"])
-        self.speed = float(t.get("speed", 1.0))
-        self.round_timeout = float(t["round_timeout_ms"]) / 1000.0
-        tel = plan["telemetry"]
-        self.every_iterations = int(tel["every_iterations"])
-        self.every_s = float(tel["every_ms"]) / 1000.0
-        self.batch_s = float(tel.get("batch_ms", 50.0)) / 1000.0
-        self.keep_delays = bool(tel.get("delay_samples", False))
-        self.rng = agent_generator(int(plan["seed"]), self.agent, purpose=1)
-        self.rx = Receiver(
-            self.agent,
-            self.spec.in_neighbours,
-            self.sizes,
-            seed=int(plan["seed"]),
-            mode=self.mode,
-            period_s=self.period,
-        )
-        self.inlinks = self.rx.inlinks
-        self._encode = self.rx.layout.encoder(self.agent, self.epoch)
-        for entry in plan.get("faults", []):
-            self.rx.add_fault(entry)
+        self.configure(plan)
 
     def send_ctl(self, kind: str, **fields: Any) -> bool:
         self._deliver(self.agent, encode_control(kind, **fields))
@@ -245,13 +215,7 @@ class LockstepCoordinator(Coordinator):
         self.write_run_json(
             engine="lockstep",
             clock="virtual: round k at k * period_ms, from 0",
-            versions={
-                "swarmrig": VERSION,
-                "python": platform.python_version(),
-                "pyzmq": zmq.__version__,
-                "libzmq": zmq.zmq_version(),
-                "numpy": np.__version__,
-            },
+            versions=run_versions(),
             coordinator={
                 "host": socket.gethostname(),
                 "pid": os.getpid(),

@@ -39,6 +39,17 @@ VERSION = "0.1.0"
 HEARTBEAT_S = 0.5
 
 
+def run_versions() -> dict[str, str]:
+    """What run.json records of the software that ran."""
+    return {
+        "swarmrig": VERSION,
+        "python": platform.python_version(),
+        "pyzmq": zmq.__version__,
+        "libzmq": zmq.zmq_version(),
+        "numpy": np.__version__,
+    }
+
+
 class RunFailed(SwarmrigError):
     """The run could not proceed (agents never ready, coordinator interrupted early)."""
 
@@ -185,13 +196,7 @@ class Coordinator:
         if self.endpoint.startswith("tcp://0.0.0.0:"):
             self.endpoint = self.endpoint.replace("0.0.0.0", socket.gethostname(), 1)
         self.write_run_json(
-            versions={
-                "swarmrig": VERSION,
-                "python": platform.python_version(),
-                "pyzmq": zmq.__version__,
-                "libzmq": zmq.zmq_version(),
-                "numpy": np.__version__,
-            },
+            versions=run_versions(),
             coordinator={
                 "host": socket.gethostname(),
                 "pid": os.getpid(),

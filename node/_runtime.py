@@ -210,6 +210,12 @@ class Node:
 
     # -- set-up ------------------------------------------------------------------------
     def setup(self, plan: Mapping[str, Any]) -> None:
+        """Configure from the plan, then bind the data sockets."""
+        self.configure(plan)
+        self.bind_sockets(plan)
+
+    def configure(self, plan: Mapping[str, Any]) -> None:
+        """Everything a plan sets up apart from sockets (the lockstep engine uses this too)."""
         _import_modules(list(plan.get("modules", [])))
         self.plan = plan
         self.epoch = int(plan["epoch"])
@@ -242,6 +248,8 @@ class Node:
         self._encode = self.rx.layout.encoder(self.agent, self.epoch)
         for entry in plan.get("faults", []):
             self.rx.add_fault(entry)
+
+    def bind_sockets(self, plan: Mapping[str, Any]) -> None:
         self.pub = self.ctx.socket(zmq.PUB)
         self.pub.setsockopt(zmq.LINGER, 0)
         self.pub.setsockopt(zmq.SNDHWM, int(plan.get("hwm", 100000)))
@@ -481,6 +489,17 @@ class Node:
             return self.rounds(state, out, budget)
         return self.asynchronous(state, out, budget)
 
+    def after_step(self, state: Any, now: float) -> bool:
+        """Sample and flush telemetry when due; True when the run must end now."""
+        if self._sample_due(now):
+            self.sample(state, now)
+            self._next_sample = now + self.every_s
+        if now >= self._next_flush:
+            self.flush()
+            self._next_flush = now + self.batch_s
+            return self.control_tick()
+        return False
+
     def _sample_due(self, now: float) -> bool:
         if self.every_iterations > 0:
             return self.iteration % self.every_iterations == 0
@@ -490,7 +509,7 @@ class Node:
         assert self.sub is not None
         deadline = None if self.seconds is None else self.start_node + float(self.seconds)
         self._next_sample = self.start_node
-        next_flush = self.clock() + self.batch_s
+        self._next_flush = self.clock() + self.batch_s
         sub = self.sub
         poller = zmq.Poller()
         poller.register(sub, zmq.POLLIN)
@@ -545,20 +564,14 @@ class Node:
             state, out = self.algorithm.step(state, self.rx.inbox(), k)
             self.iteration = k + 1
             self.check_state(state)
-            if self._sample_due(now):
-                self.sample(state, now)
-                self._next_sample = now + self.every_s
-            if now >= next_flush:
-                self.flush()
-                next_flush = now + self.batch_s
-                if self.control_tick():
-                    return state, self.stop_reason or "coordinator lost"
+            if self.after_step(state, now):
+                return state, self.stop_reason or "coordinator lost"
 
     def asynchronous(self, state: Any, out: dict, budget: int | None) -> tuple[Any, str]:
         assert self.sub is not None
         deadline = None if self.seconds is None else self.start_node + float(self.seconds)
         self._next_sample = self.start_node
-        next_flush = self.clock() + self.batch_s
+        self._next_flush = self.clock() + self.batch_s
         poller = zmq.Poller()
         poller.register(self.sub, zmq.POLLIN)
         poller.register(self.ctl, zmq.POLLIN)
@@ -593,14 +606,8 @@ class Node:
             if self.jitter > 0.0:
                 period *= 1.0 + self.jitter * (2.0 * self.rng.random() - 1.0)
             next_step = max(next_step + period, now - 10 * period)
-            if self._sample_due(now):
-                self.sample(state, now)
-                self._next_sample = now + self.every_s
-            if now >= next_flush:
-                self.flush()
-                next_flush = now + self.batch_s
-                if self.control_tick():
-                    return state, self.stop_reason or "coordinator lost"
+            if self.after_step(state, now):
+                return state, self.stop_reason or "coordinator lost"
 
     def finish(self, state: Any, reason: str) -> None:
         now = self.clock()
