@@ -39,13 +39,19 @@ def test_in_memory_first():
     b = np.linspace(-3.0, 4.0, N)
     specs = [
         AgentSpec(
-            id=i, n_agents=N, dimension=1,
-            in_neighbours=((i - 1) % N, (i + 1) % N), out_neighbours=((i - 1) % N, (i + 1) % N),
+            id=i,
+            n_agents=N,
+            dimension=1,
+            in_neighbours=((i - 1) % N, (i + 1) % N),
+            out_neighbours=((i - 1) % N, (i + 1) % N),
             weights={j: W[i, j] for j in ((i - 1) % N, (i + 1) % N, i)},
-            objective=objective_from_spec({"kind": "quadratic", "target": [b[i]],
-                                           "curvature": [[1.0]]}),
-            initial_state=np.zeros(1), initial_priorities=None,
-            step=StepRule(step=ALPHA), params={"lam": LAM},
+            objective=objective_from_spec(
+                {"kind": "quadratic", "target": [b[i]], "curvature": [[1.0]]}
+            ),
+            initial_state=np.zeros(1),
+            initial_priorities=None,
+            step=StepRule(step=ALPHA),
+            params={"lam": LAM},
         )
         for i in range(N)
     ]
@@ -60,11 +66,21 @@ def test_selected_by_name_in_a_scenario(processes, tmp_path):
     processes.watch_run_dir(out)
     result = coordinator.run(
         {
-            "swarm": {"name": "lazy", "agents": N, "dimension": 1, "seed": 2, "mode": "rounds",
-                      "iterations": 600},
+            "swarm": {
+                "name": "lazy",
+                "agents": N,
+                "dimension": 1,
+                "seed": 2,
+                "mode": "rounds",
+                "iterations": 600,
+            },
             "topology": {"shape": "ring"},
-            "algorithm": {"name": "lazy-dgd", "module": "tests.plugins.lazy_dgd", "step": ALPHA,
-                          "params": {"lam": LAM}},
+            "algorithm": {
+                "name": "lazy-dgd",
+                "module": "tests.plugins.lazy_dgd",
+                "step": ALPHA,
+                "params": {"lam": LAM},
+            },
         },
         out=out,
     )

@@ -40,13 +40,34 @@ host = "127.0.0.1"
     )
     endpoint = f"tcp://127.0.0.1:{_free_port()}"
     out = tmp_path / "run"
-    coord = processes.start("run", str(scenario), "--listen", endpoint, "--no-launch",
-                            "--out", str(out), "--quiet", "--json")
+    coord = processes.start(
+        "run",
+        str(scenario),
+        "--listen",
+        endpoint,
+        "--no-launch",
+        "--out",
+        str(out),
+        "--quiet",
+        "--json",
+    )
     agents = []
     for i in range(n):
         p = subprocess.Popen(
-            [sys.executable, "-m", "coordinator.cli", "node", "--join", endpoint, "--agent", str(i)],
-            start_new_session=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+            [
+                sys.executable,
+                "-m",
+                "coordinator.cli",
+                "node",
+                "--join",
+                endpoint,
+                "--agent",
+                str(i),
+            ],
+            start_new_session=True,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
         )
         processes.groups.add(p.pid)
         processes.popen.append(p)

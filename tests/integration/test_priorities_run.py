@@ -18,8 +18,14 @@ UNEQUAL = [[0.5, 0.3, 0.2], [0.2, 0.2, 0.6], [0.1, 0.1, 0.8]]
 
 def _path_scenario(name: str, prios: list[list[float]], gain: float, **extra) -> dict:
     return {
-        "swarm": {"name": name, "agents": 3, "dimension": 1, "seed": 1, "mode": "rounds",
-                  "iterations": 3000},
+        "swarm": {
+            "name": name,
+            "agents": 3,
+            "dimension": 1,
+            "seed": 1,
+            "mode": "rounds",
+            "iterations": 3000,
+        },
         "topology": {"shape": "path"},
         "priorities": {"initial": prios, "gain": gain},
         "algorithm": {"name": "priority-weighted", "step": 0.05, **extra},
@@ -27,9 +33,7 @@ def _path_scenario(name: str, prios: list[list[float]], gain: float, **extra) ->
     }
 
 
-def test_unequal_priorities_report_effective_weights_and_reach_their_optimum(
-    processes, tmp_path
-):
+def test_unequal_priorities_report_effective_weights_and_reach_their_optimum(processes, tmp_path):
     out = tmp_path / "run"
     processes.watch_run_dir(out)
     result = coordinator.run(_path_scenario("unequal", UNEQUAL, 0.0), out=out)
@@ -38,9 +42,13 @@ def test_unequal_priorities_report_effective_weights_and_reach_their_optimum(
     # the row-stochastic mix each agent builds from its own vector (methods.md): a_ij = w_i^j
     # for a neighbour heard, a_ii = w_i^i plus the priorities of agents it does not hear
     W = np.asarray(UNEQUAL)
-    A = np.array([[W[0, 0] + W[0, 2], W[0, 1], 0.0],
-                  [W[1, 0], W[1, 1], W[1, 2]],
-                  [0.0, W[2, 1], W[2, 2] + W[2, 0]]])
+    A = np.array(
+        [
+            [W[0, 0] + W[0, 2], W[0, 1], 0.0],
+            [W[1, 0], W[1, 1], W[1, 2]],
+            [0.0, W[2, 1], W[2, 2] + W[2, 0]],
+        ]
+    )
     ev, vecs = np.linalg.eig(A.T)  # left Perron vector, recomputed with numpy
     pi = np.real(vecs[:, np.argmin(np.abs(ev - 1.0))])
     pi /= pi.sum()

@@ -110,8 +110,14 @@ def test_rounds_mode_lands_on_the_dgd_fixed_point(processes, tmp_path):
     out = tmp_path / "ring"
     processes.watch_run_dir(out)
     scenario = {
-        "swarm": {"name": "ring-fixed-point", "agents": n, "dimension": 1, "seed": 11,
-                  "mode": "rounds", "iterations": 400},
+        "swarm": {
+            "name": "ring-fixed-point",
+            "agents": n,
+            "dimension": 1,
+            "seed": 11,
+            "mode": "rounds",
+            "iterations": 400,
+        },
         "topology": {"shape": "ring"},
         "objective": {"kind": "quadratic", "spread": 5.0},
         "algorithm": {"name": "dgd", "step": alpha},
@@ -194,8 +200,9 @@ period_ms = 2.0
 def test_agents_die_with_a_killed_coordinator(processes, tmp_path):
     n = 8
     out = tmp_path / "run"
-    p = processes.start("run", str(_long_scenario(tmp_path / "long.toml", n)), "--out",
-                        str(out), "--quiet")
+    p = processes.start(
+        "run", str(_long_scenario(tmp_path / "long.toml", n)), "--out", str(out), "--quiet"
+    )
     run = _wait_running(out, n)
     processes.swarm_group(out)
     pids = [a["pid"] for a in run["agents"]]
@@ -224,8 +231,9 @@ def _alive(pid: int) -> bool:
 def test_a_killed_agent_ends_the_run_with_a_clear_reason(processes, tmp_path):
     n = 6
     out = tmp_path / "run"
-    p = processes.start("run", str(_long_scenario(tmp_path / "long.toml", n)), "--out",
-                        str(out), "--quiet")
+    p = processes.start(
+        "run", str(_long_scenario(tmp_path / "long.toml", n)), "--out", str(out), "--quiet"
+    )
     run = _wait_running(out, n)
     processes.swarm_group(out)
     victim = run["agents"][3]["pid"]
@@ -252,8 +260,14 @@ def test_python_api_returns_summary_and_series(processes, tmp_path):
     processes.watch_run_dir(out)
     result = coordinator.run(
         {
-            "swarm": {"name": "api", "agents": 4, "dimension": 2, "seed": 1, "mode": "rounds",
-                      "iterations": 200},
+            "swarm": {
+                "name": "api",
+                "agents": 4,
+                "dimension": 2,
+                "seed": 1,
+                "mode": "rounds",
+                "iterations": 200,
+            },
             "topology": {"shape": "path"},
         },
         out=out,

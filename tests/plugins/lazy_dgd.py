@@ -36,7 +36,9 @@ class LazyDGD(Algorithm):
         x = np.array(self.spec.initial_state, dtype=float)
         return LazyState(x=x), {"x": x}
 
-    def step(self, state: LazyState, inbox: Mapping[int, Received], k: int) -> tuple[LazyState, Payload]:
+    def step(
+        self, state: LazyState, inbox: Mapping[int, Received], k: int
+    ) -> tuple[LazyState, Payload]:
         spec = self.spec
         mixed = spec.weights[spec.id] * state.x
         for j in spec.in_neighbours:
