@@ -138,6 +138,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(result.summary, indent=2))
     if not args.quiet:
+        console.print()
         console.print(summary_table(result.summary))
     return result.exit_code
 
