@@ -33,6 +33,7 @@ from typing import Any, NoReturn
 import numpy as np
 import tomli_w
 
+from topologies._build import SHAPES
 from topologies._errors import ScenarioError
 
 __all__ = [
@@ -51,17 +52,7 @@ __all__ = [
 ]
 
 MODES = ("rounds", "async")
-TOPOLOGY_SHAPES = (
-    "ring",
-    "path",
-    "grid",
-    "star",
-    "complete",
-    "random-geometric",
-    "erdos-renyi",
-    "small-world",
-    "file",
-)
+TOPOLOGY_SHAPES = (*SHAPES, "file")
 OBJECTIVE_KINDS = ("quadratic", "logistic", "huber", "custom")
 LINK_FAULT_KINDS = ("loss", "burst-loss", "delay", "duplicate", "corrupt", "outage")
 PROCESS_FAULT_KINDS = ("crash", "pause", "slow")

@@ -2,7 +2,7 @@
 
 For tests of the pure cores and for quick studies. ``deliver(src, dst, k)`` decides whether
 the round-k message on link src->dst arrives (default: always). The full lockstep runner with
-the fault models lives in the coordinator; this is the minimal helper of style.md, rule 1.
+the fault models lives in the coordinator; this is the minimal helper for testing a pure step (DEVELOPERS.md, "Adding an algorithm").
 """
 
 from __future__ import annotations

@@ -2,7 +2,7 @@
 
     sent == delivered + dropped_injected + lost_transport + rejected + in_flight
 
-with injected duplicates counted apart (design.md, links.csv and summary.json). In rounds
+with injected duplicates counted apart (the run directory design: links.csv and summary.json). In rounds
 mode the split is also predicted message by message from the decision model
 (node._links.LinkModel rebuilt from the resolved scenario.toml): what it drops is dropped,
 what it corrupts is rejected, what it duplicates is duplicated, and what its delay pushes

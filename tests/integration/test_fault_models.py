@@ -10,7 +10,7 @@ obeyed the model. The module also holds the small readers the other fault tests 
 
 Sources: Bernoulli counts against the binomial law (scipy.stats.binom); Gilbert–Elliott
 loss rate, mean burst length and P(loss | loss) against Gilbert, Bell System Technical
-Journal 39 (1960) and Elliott, BSTJ 42 (1963), standard errors as in shared/methods.md
+Journal 39 (1960) and Elliott, BSTJ 42 (1963), standard errors as in the method notes
 (recomputed with numpy here); delays against scipy.stats.lognorm with a Kolmogorov–Smirnov
 test (scipy.stats.kstest).
 """

@@ -17,38 +17,9 @@ import pytest
 import coordinator
 import topologies as topo
 from coordinator._rundir import read_telemetry
+from tests.run_dir_spec import MESSAGE_KEYS, RUN_FILES, SUMMARY_KEYS
 
 pytestmark = pytest.mark.integration
-
-RUN_FILES = (
-    "scenario.toml",
-    "agents.json",
-    "run.json",
-    "telemetry",
-    "events.jsonl",
-    "links.csv",
-    "metrics.csv",
-    "summary.json",
-)
-SUMMARY_KEYS = (
-    "scenario",
-    "agents",
-    "algorithm",
-    "mode",
-    "wall_s",
-    "startup_s",
-    "iterations_per_s",
-    "x_star",
-    "F_star",
-    "x_hat",
-    "final_gap",
-    "final_consensus_error",
-    "time_to_tolerance_s",
-    "messages",
-    "verdict",
-    "exit",
-)
-MESSAGE_KEYS = ("sent", "delivered", "dropped_injected", "lost_transport", "rejected", "in_flight")
 
 
 def finals(run_dir: Path, n: int) -> np.ndarray:

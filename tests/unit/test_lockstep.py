@@ -26,38 +26,9 @@ from coordinator._rundir import read_telemetry
 from coordinator._view import LiveView
 from node._dgd import DGD
 from node._errors import ObjectiveError
+from tests.run_dir_spec import MESSAGE_KEYS, RUN_FILES, SUMMARY_KEYS
 from topologies._errors import ScenarioError
 
-# The run directory and summary keys the design fixes (/work/shared/design.md, "Run directory").
-RUN_FILES = (
-    "scenario.toml",
-    "agents.json",
-    "run.json",
-    "telemetry",
-    "events.jsonl",
-    "links.csv",
-    "metrics.csv",
-    "summary.json",
-)
-SUMMARY_KEYS = (
-    "scenario",
-    "agents",
-    "algorithm",
-    "mode",
-    "wall_s",
-    "startup_s",
-    "iterations_per_s",
-    "x_star",
-    "F_star",
-    "x_hat",
-    "final_gap",
-    "final_consensus_error",
-    "time_to_tolerance_s",
-    "messages",
-    "verdict",
-    "exit",
-)
-MESSAGE_KEYS = ("sent", "delivered", "dropped_injected", "lost_transport", "rejected", "in_flight")
 #: summary figures that measure this process's speed, not the run
 REAL_TIME_KEYS = ("wall_s", "startup_s", "run_s", "iterations_per_s", "run_dir")
 
