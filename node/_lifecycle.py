@@ -83,7 +83,9 @@ class Lifecycle:
         self.phase = S
 
     def fail(self) -> None:
-        self.phase = Phase.FAILED
+        """Something broke locally; STOPPED and FAILED are final and stay as they are."""
+        if self.live:
+            self.phase = Phase.FAILED
 
     @property
     def live(self) -> bool:

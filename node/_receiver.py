@@ -31,6 +31,8 @@ from node._wire import CRC_RESIDUE, DATA, PROBE, DataLayout
 
 __all__ = ["COUNTER_FIELDS", "InLinkCounters", "Receiver"]
 
+#: a sequence number this far past the highest seen is refused as implausible
+_MAX_SEQ_JUMP = 1 << 20
 #: gaps up to this long remember their sequence numbers (for late arrivals)
 _TRACKED_GAP = 1 << 16
 #: below this many frames a batch is handled frame by frame
@@ -228,6 +230,11 @@ class Receiver:
         if epoch == link.epoch:
             link.current = c
         c.received += 1
+        if c.max_seq >= 0 and seq - c.max_seq > _MAX_SEQ_JUMP:
+            # No real link skips a million messages in one step: a forged or broken header
+            # would otherwise turn every later real frame into a "replay".
+            c.rejected += 1
+            return
         if seq <= c.max_seq:  # replayed or reordered by the transport: refuse
             c.rejected += 1
             if seq in c.missing:  # it arrived after all: refused, not lost

@@ -392,8 +392,21 @@ CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
 
 
 def encode_control(kind: str, **fields: Any) -> bytes:
-    if kind not in CONTROL_SCHEMA:
+    """Encode a control message; its fields must fit :data:`CONTROL_SCHEMA` exactly, so a
+    sender bug shows here rather than as a refusal at the other end."""
+    schema = CONTROL_SCHEMA.get(kind)
+    if schema is None:
         raise WireError(f"unknown control message type {kind!r}")
+    if fields.keys() != schema.keys():
+        raise WireError(
+            f"control {kind!r} needs keys {sorted(schema)}; got {sorted(fields)}"
+        )
+    for key, typ in schema.items():
+        v = fields[key]
+        if isinstance(v, np.ndarray | np.generic):  # numpy travels as plain values
+            v = fields[key] = v.tolist() if isinstance(v, np.ndarray) else v.item()
+        if isinstance(v, bool) or not isinstance(v, typ):
+            raise WireError(f"control {kind!r} key {key!r} has type {type(v).__name__}")
     fields["t"] = kind
     return msgpack.packb(fields, default=_default)
 

@@ -190,3 +190,11 @@ def test_random_message_sequences_follow_the_table(kinds: list[str]) -> None:
         assert life.phase is phase
         assert life.refused == refused
         assert life.live == (phase not in (STOPPED, FAILED))
+
+
+@pytest.mark.parametrize("final", [Phase.STOPPED, Phase.FAILED])
+def test_fail_leaves_a_final_phase_alone(final: Phase) -> None:
+    life = Lifecycle()
+    life.phase = final
+    life.fail()
+    assert life.phase is final

@@ -610,3 +610,18 @@ def test_a_clean_batch_takes_the_shortcut() -> None:
     r.on_frames(frames[2:], 2.0)
     assert calls == []
     assert counters(r, 1, 1).delivered == 21 and counters(r, 2, 1).delivered == 21
+
+
+def test_an_implausible_sequence_jump_is_refused_and_the_link_keeps_working() -> None:
+    # A checksum is not authentication: one frame claiming seq + 2**40 must not turn every
+    # later real frame into a "replay".
+    r = rx()
+    sender = INS[0]
+    for s in range(5):
+        r.on_frame(frame(sender, s), 0.0)
+    r.on_frame(frame(sender, 5 + 2**40), 0.0)
+    for s in range(5, 10):
+        r.on_frame(frame(sender, s), 0.0)
+    c = counters(r, sender)
+    assert c.rejected == 1 and c.delivered == 10 and c.max_seq == 9 and c.lost_transport == 0
+    assert identity_holds(c)

@@ -749,3 +749,14 @@ def test_crc_trailer_is_little_endian_crc32_of_the_body() -> None:
     frame = encode_data(1, 2, 3, 4, 5.0, PAYLOAD)
     assert struct.unpack("<I", frame[-4:])[0] == zlib.crc32(frame[:-4])
     assert msgpack.unpackb(frame[:-4])[:6] == [DATA, 1, 2, 3, 4, 5.0]
+
+
+def test_the_control_encoder_refuses_what_the_decoder_would() -> None:
+    with pytest.raises(WireError, match="needs keys"):
+        encode_control("pong", seq=1, t_coord=2.0)  # t_node missing
+    with pytest.raises(WireError, match="needs keys"):
+        encode_control("ready", extra=1)
+    with pytest.raises(WireError, match="'seq' has type bool"):
+        encode_control("ping", seq=True, t_coord=1.0)
+    with pytest.raises(WireError, match="'reason' has type int"):
+        encode_control("stop", reason=3)
