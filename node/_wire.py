@@ -398,9 +398,7 @@ def encode_control(kind: str, **fields: Any) -> bytes:
     if schema is None:
         raise WireError(f"unknown control message type {kind!r}")
     if fields.keys() != schema.keys():
-        raise WireError(
-            f"control {kind!r} needs keys {sorted(schema)}; got {sorted(fields)}"
-        )
+        raise WireError(f"control {kind!r} needs keys {sorted(schema)}; got {sorted(fields)}")
     for key, typ in schema.items():
         v = fields[key]
         if isinstance(v, np.ndarray | np.generic):  # numpy travels as plain values
