@@ -6,6 +6,7 @@ estimated from the scenario.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -106,18 +107,7 @@ def link_accounting(
     for lst in by_agent.values():
         lst.sort(key=lambda r: r.epoch)
     rows = []
-    tot = dict.fromkeys(
-        (
-            "sent",
-            "delivered",
-            "dropped_injected",
-            "lost_transport",
-            "rejected",
-            "duplicated",
-            "in_flight",
-        ),
-        0,
-    )
+    tot = dict.fromkeys((f.name for f in dataclasses.fields(MessageTotals)), 0)
     for src, dst in links:
         row = dict.fromkeys(tot, 0)
         medians, p95s, maxes, weights = [], [], [], []

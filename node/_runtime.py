@@ -15,13 +15,14 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
+import dataclasses
 import os
 import signal
 import socket
 import sys
 import time
 import traceback
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from typing import Any
 
 import numpy as np
@@ -414,13 +415,8 @@ class Node:
                 self.send_ctl("ready")
                 ready_sent = True
             if self.ctl in events:
-                while self.ctl.poll(0):
-                    msg = self.handle_ctl(self.ctl.recv())
-                    if msg is None:
-                        continue
-                    if msg["t"] == "peers":
-                        self.apply_peers(msg["peers"])
-                    elif msg["t"] == "go":
+                for msg in self.pending_control():
+                    if msg["t"] == "go":
                         self.start_node = float(msg["start_node"])
                         self.rx.start = self.start_node
                         # data that came before go is handled now that the run's clock is
@@ -442,32 +438,27 @@ class Node:
         state, out = self.algorithm.init()
         start_state = self.plan.get("start_state")
         if start_state is not None:  # a restart that keeps its last reported state
-            state, out = (
-                self.algorithm.resume(state, np.asarray(start_state, dtype=float))
-                if hasattr(self.algorithm, "resume")
-                else self._resume_x(state, start_state)
-            )
+            x = np.asarray(start_state, dtype=float)
+            state = dataclasses.replace(state, x=x)
+            if "x" in out:
+                out = {**out, "x": x}
         return state, out
 
-    def _resume_x(self, state: Any, x: Any) -> tuple[Any, dict]:
-        import dataclasses
-
-        new = dataclasses.replace(state, x=np.asarray(x, dtype=float))
-        _, out = self.algorithm.init()
-        out = dict(out)
-        if "x" in out:
-            out["x"] = new.x
-        return new, out
-
-    def control_tick(self) -> bool:
-        """Handle pending control messages; True when the run must end now."""
+    def pending_control(self) -> Iterator[dict[str, Any]]:
+        """The control messages waiting now, peer-table updates already applied."""
         while self.ctl.poll(0):
             msg = self.handle_ctl(self.ctl.recv())
             if msg is None:
                 continue
             if msg["t"] == "peers":
                 self.apply_peers(msg["peers"])
-            elif msg["t"] == "stop":
+                continue
+            yield msg
+
+    def control_tick(self) -> bool:
+        """Handle pending control messages; True when the run must end now."""
+        for msg in self.pending_control():
+            if msg["t"] == "stop":
                 return True
         return self.coordinator_lost()
 
