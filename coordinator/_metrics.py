@@ -13,15 +13,18 @@ from typing import Any
 
 import numpy as np
 
-from coordinator._reference import Reference, total_objective
+from coordinator._reference import Reference
+from coordinator._results import GapFunction
 from node._objectives import Objective
 
 __all__ = [
     "AgentRecord",
+    "FinalState",
     "MessageTotals",
+    "final_states",
+    "final_states_json",
     "link_accounting",
     "metric_series",
-    "time_to_tolerance",
 ]
 
 # positions in a link counter row (see node._runtime.COUNTER_FIELDS)
@@ -181,13 +184,17 @@ def metric_series(
     *,
     by_iteration: bool,
     max_points: int = 600,
+    gap: GapFunction | None = None,
 ) -> list[dict[str, Any]]:
     """The metrics.csv rows: at each grid point, every agent's latest sample at or before it.
 
     Rounds mode uses the sampled iterations as the grid (every agent samples the same
     iterations), async mode a time grid. An agent not yet sampled at a grid point is left
-    out of that point.
+    out of that point. ``gap`` (default: built from objectives, intended and reference) is
+    the run's one gap function: ``gap`` is that of the average, ``worst_agent_gap`` the
+    largest of the agents' own.
     """
+    gap = gap or GapFunction(objectives, intended, reference)
     per_agent: dict[int, list[tuple]] = {}
     for r in records:
         per_agent.setdefault(r.agent, []).extend(r.samples)
@@ -229,7 +236,8 @@ def metric_series(
             continue
         X = np.asarray(xs)
         x_hat = X.mean(axis=0)
-        gap = total_objective(objectives, intended, x_hat) - reference.F_star
+        own = gap.many(X)
+        worst = float(np.max(np.where(np.isnan(own), np.inf, own)))
         cons = float(np.max(np.linalg.norm(X - x_hat, axis=1)))
         if ws:
             Wm = np.asarray(ws)
@@ -241,7 +249,8 @@ def metric_series(
         rows.append(
             {
                 "t_s": float(np.median(ts)) if by_iteration else float(key),
-                "gap": float(gap),
+                "gap": gap(x_hat),
+                "worst_agent_gap": worst,
                 "consensus_error": cons,
                 "priority_disagreement": pdis,
                 "priority_drift": pdrift,
@@ -253,9 +262,61 @@ def metric_series(
     return rows
 
 
-def time_to_tolerance(rows: Sequence[Mapping[str, Any]], threshold: float) -> float | None:
-    """First time the gap is at or below ``threshold`` (None if never)."""
-    for r in rows:
-        if r["gap"] <= threshold:
-            return float(r["t_s"])
-    return None
+@dataclass(frozen=True, slots=True, kw_only=True)
+class FinalState:
+    """One agent's state at the end of the run, as final_states.json records it."""
+
+    agent: int
+    #: the incarnation it came from
+    epoch: int
+    iteration: int
+    x: list[float]
+    #: "final report" (the agent's own last word) or "last sample" (it died before one)
+    source: str
+
+
+def final_states(records: Sequence[AgentRecord]) -> dict[int, FinalState]:
+    """Every agent's final state: its last incarnation's final report, else that
+    incarnation's last telemetry sample; agents with neither are absent."""
+    last: dict[int, AgentRecord] = {}
+    for r in records:
+        if r.agent not in last or r.epoch >= last[r.agent].epoch:
+            last[r.agent] = r
+    out = {}
+    for a, r in sorted(last.items()):
+        if r.final is not None:
+            x, it, src = r.final["state"]["x"], int(r.final["iteration"]), "final report"
+        elif r.samples:
+            x, it, src = r.samples[-1][2], int(r.samples[-1][0]), "last sample"
+        else:
+            continue
+        out[a] = FinalState(
+            agent=a, epoch=r.epoch, iteration=it, x=[float(v) for v in x], source=src
+        )
+    return out
+
+
+def final_states_json(
+    finals: Mapping[int, FinalState], n: int, gap: GapFunction
+) -> list[dict[str, Any]]:
+    """final_states.json: one object per agent id 0..n-1 (id, epoch, iteration, source, x,
+    gap = F(x) - F*); an agent that never reported has x, gap and epoch null."""
+    out = []
+    for a in range(n):
+        f = finals.get(a)
+        if f is None:
+            out.append(
+                {"id": a, "epoch": None, "iteration": None, "source": None, "x": None, "gap": None}
+            )
+            continue
+        out.append(
+            {
+                "id": a,
+                "epoch": f.epoch,
+                "iteration": f.iteration,
+                "source": f.source,
+                "x": f.x,
+                "gap": gap(np.asarray(f.x)),
+            }
+        )
+    return out

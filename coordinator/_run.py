@@ -25,8 +25,14 @@ import numpy as np
 import zmq
 
 from coordinator._launch import ForkServer
-from coordinator._metrics import AgentRecord, link_accounting, metric_series, time_to_tolerance
-from coordinator._reference import total_objective
+from coordinator._metrics import (
+    AgentRecord,
+    final_states,
+    final_states_json,
+    link_accounting,
+    metric_series,
+)
+from coordinator._results import GapFunction, fault_windows, target_spread, verdict_figures
 from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
 from coordinator._swarm import Swarm, with_transport
 from node._errors import WireError
@@ -123,6 +129,8 @@ class _Stop(Exception):
 class Coordinator:
     def __init__(self, swarm: Swarm, options: RunOptions) -> None:
         self.swarm = swarm
+        #: the run's one gap function: summary, metrics and live view all use it
+        self.gap = GapFunction.for_swarm(swarm)
         self.opt = options
         self.s = swarm.scenario
         self.n = swarm.n
@@ -717,30 +725,26 @@ class Coordinator:
             sw.intended,
             sw.reference,
             by_iteration=s.mode == "rounds" and sw.telemetry["every_iterations"] > 0,
+            gap=self.gap,
         )
         self.dir.write_csv("metrics.csv", METRIC_COLUMNS, metrics)
         links, totals = link_accounting(records, sw.topology.edges())
         self.dir.write_csv("links.csv", LINK_COLUMNS, links)
-        finals = []
-        for a in self.agents:
-            r = a.records[-1] if a.records else None
-            if r is not None and r.final is not None:
-                finals.append(np.asarray(r.final["state"]["x"], dtype=float))
-            elif r is not None and r.samples:
-                finals.append(np.asarray(r.samples[-1][2], dtype=float))
-        ref = sw.reference
-        scale = max(abs(ref.F_star), 1.0)
-        threshold = s.tolerance * scale
-        if finals:
-            X = np.asarray(finals)
-            x_hat = X.mean(axis=0)
-            final_gap = total_objective(sw.objectives, sw.intended, x_hat) - ref.F_star
-            cons = float(np.max(np.linalg.norm(X - x_hat, axis=1)))
-        else:
-            x_hat, final_gap, cons = None, None, None
-        tt = time_to_tolerance(metrics, threshold)
-        if final_gap is not None and final_gap <= threshold and tt is None:
-            tt = self.final_time()
+        finals = final_states(records)
+        figures = verdict_figures(
+            states={a: np.asarray(f.x) for a, f in finals.items()},
+            n_agents=self.n,
+            gap=self.gap,
+            tolerance=s.tolerance,
+            rows=metrics,
+            windows=fault_windows(s.faults, self.dir.events()),
+            exit_code=self.exit_code,
+            diverged=self.verdict == "diverged",
+            spread=target_spread(sw.objectives, sw.reference.x_star),
+            end_time=self.final_time(),
+        )
+        self.verdict = figures["verdict"]
+        self.dir.write_json("final_states.json", final_states_json(finals, self.n, self.gap))
         run_s = None
         iters = 0  # agent iterations done in the run phase, over every incarnation
         for r in records:
@@ -751,15 +755,7 @@ class Coordinator:
             iters += last - first
         if self.t_go is not None:
             run_s = (self.t_end or self.clock()) - self.t_go
-        if self.verdict is None:
-            if self.exit_code == 130:
-                self.verdict = "interrupted"
-            elif self.exit_code != 0:
-                self.verdict = "failed"
-            elif final_gap is not None and final_gap <= threshold:
-                self.verdict = "reached tolerance"
-            else:
-                self.verdict = "tolerance not reached"
+        ref = sw.reference
         summary = {
             "scenario": s.name,
             "agents": self.n,
@@ -777,18 +773,12 @@ class Coordinator:
             "F_star": ref.F_star,
             "reference_method": ref.method,
             "reference_tolerance": ref.tolerance,
-            "x_hat": None if x_hat is None else x_hat.tolist(),
-            "final_gap": final_gap,
-            "final_consensus_error": cons,
-            "tolerance": s.tolerance,
-            "tolerance_threshold": threshold,
-            "time_to_tolerance_s": tt,
+            **figures,
             "messages": totals.as_dict(),
-            "verdict": self.verdict,
             "exit": self.exit_reason,
             "run_dir": str(self.dir.path),
         }
-        summary.update(self.extra_summary(records, x_hat))
+        summary.update(self.extra_summary(records, figures["x_hat"]))
         self.dir.write_json("summary.json", summary)
         return RunResult(
             summary=summary,

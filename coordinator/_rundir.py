@@ -11,7 +11,7 @@ from typing import Any
 
 import msgpack
 
-__all__ = ["LINK_COLUMNS", "METRIC_COLUMNS", "RunDir", "read_telemetry"]
+__all__ = ["LINK_COLUMNS", "METRIC_COLUMNS", "RunDir", "read_events", "read_telemetry"]
 
 LINK_COLUMNS = (
     "from",
@@ -36,6 +36,7 @@ METRIC_COLUMNS = (
     "iteration_min",
     "iteration_median",
     "iteration_max",
+    "worst_agent_gap",
 )
 
 
@@ -93,6 +94,11 @@ class RunDir:
                 w.writerow({k: ("" if r.get(k) is None else r.get(k)) for k in columns})
         tmp.replace(self.path / name)
 
+    def events(self) -> list[dict[str, Any]]:
+        """Every event written so far, in order (read back from events.jsonl)."""
+        self._events.flush()
+        return read_events(self.path / "events.jsonl")
+
     def close(self) -> None:
         for f in self._tel.values():
             f.close()
@@ -110,4 +116,16 @@ def read_telemetry(path: Path) -> list[dict[str, Any]]:
                 out.append(obj)
         except (ValueError, msgpack.OutOfData):
             pass
+    return out
+
+
+def read_events(path: Path) -> list[dict[str, Any]]:
+    """Every object of an events.jsonl file, in order (a torn last line is skipped)."""
+    out = []
+    with path.open() as f:
+        for line in f:
+            try:
+                out.append(json.loads(line))
+            except json.JSONDecodeError:
+                continue
     return out

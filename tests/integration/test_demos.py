@@ -39,7 +39,11 @@ def test_partition_demo_gap_rises_during_the_partition_and_falls_after(processes
     after = _gap(rows, 900, 1000)
     assert during > 3 * before, (before, during)
     assert after < during / 3, (during, after)
-    assert result.summary["verdict"] == "reached tolerance"
+    # constant-step DGD: the average lands, the robots stay a bias apart, and the verdict
+    # says so (Yuan, Ling, Yin, SIAM J. Optim. 26 (2016): an O(step) neighbourhood)
+    s = result.summary
+    assert s["verdict"] == "average within tolerance but agents disagree"
+    assert s["final_gap"] <= s["tolerance_threshold"] < s["worst_agent_gap"]
     events = [json.loads(line) for line in (out / "events.jsonl").read_text().splitlines()]
     order = [e["event"] for e in events if e["event"] in ("crash", "restart", "agent-rejoined")]
     assert order == ["crash", "restart", "agent-rejoined"]
