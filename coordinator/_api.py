@@ -2,14 +2,18 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from coordinator._demos import demo_path
 from coordinator._run import RunOptions, RunResult, execute
-from coordinator._scenario import Scenario, load_scenario
+from coordinator._scenario import Scenario, is_file, load_scenario
 from coordinator._swarm import Swarm, build_swarm
+from topologies._errors import ScenarioError
 
 __all__ = ["check", "load", "run"]
 
@@ -21,9 +25,18 @@ def load(scenario: str | Path | Mapping[str, Any] | Scenario) -> Swarm:
     """
     if isinstance(scenario, Scenario):
         return build_swarm(scenario)
-    if isinstance(scenario, str) and not Path(scenario).exists() and demo_path(scenario):
+    if isinstance(scenario, str) and not is_file(Path(scenario)) and demo_path(scenario):
         scenario = demo_path(scenario)  # type: ignore[assignment]
-    return build_swarm(load_scenario(scenario))  # type: ignore[arg-type]
+    swarm = build_swarm(load_scenario(scenario))  # type: ignore[arg-type]
+    ref = swarm.reference
+    if not (math.isfinite(ref.F_star) and np.all(np.isfinite(ref.x_star))):
+        # the bounds on every scale keep this from happening; say so if a combination slips by
+        raise ScenarioError(
+            f"{swarm.scenario.source}: the reference optimum is not finite (F_star ="
+            f" {ref.F_star!r}): the objective overflows float64; reduce [objective].spread or"
+            " the [[agent]] targets and curvatures"
+        )
+    return swarm
 
 
 def run(

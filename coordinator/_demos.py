@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import difflib
 from pathlib import Path
 
-__all__ = ["DEFAULT_DEMO", "demo_path", "list_demos"]
+__all__ = ["DEFAULT_DEMO", "closest_demo", "demo_path", "list_demos"]
 
 _DIR = Path(__file__).with_name("demos")
 DEFAULT_DEMO = "tidal-buoys"
@@ -22,5 +23,13 @@ def list_demos() -> list[tuple[str, str]]:
 
 
 def demo_path(name: str) -> Path | None:
-    p = _DIR / f"{name}.toml"
-    return p if p.is_file() else None
+    """The demo's file, or None when no demo has that name."""
+    if name not in {stem for stem, _ in list_demos()}:
+        return None
+    return _DIR / f"{name}.toml"
+
+
+def closest_demo(name: str) -> str | None:
+    """The demo name a typo most likely meant, or None (difflib's similarity ratio)."""
+    close = difflib.get_close_matches(name, [stem for stem, _ in list_demos()], n=1, cutoff=0.6)
+    return close[0] if close else None

@@ -33,6 +33,8 @@ from typing import Any, NoReturn
 import numpy as np
 import tomli_w
 
+from coordinator import _limits as lim
+from node._links import validate_fault_params
 from topologies._build import SHAPES
 from topologies._errors import ScenarioError
 
@@ -203,6 +205,8 @@ _NAME_EXPECTED = 'a name of up to 64 letters, digits, ".", "_" or "-" (it names 
 _REQUIRED: Any = object()
 #: TOML integers are signed 64-bit
 _INT64_MAX = 2**63 - 1
+#: largest condition number of random curvatures (float64 keeps about 16 - log10 of it digits)
+_CONDITION_MAX = 1e12
 
 
 # --------------------------------------------------------------------------- the record
@@ -370,13 +374,26 @@ def load_scenario(
         return _resolve(path_or_dict, src, base, default_name="swarm")
     if isinstance(path_or_dict, str | os.PathLike):
         path = Path(path_or_dict)
-        src = source or str(path_or_dict)
+        src = source or _short_path(str(path_or_dict))
         raw = _read_toml(path, src)
         default_name = re.sub(r"[^A-Za-z0-9._-]+", "-", path.stem).strip("-._")[:64] or "swarm"
         return _resolve(raw, src, path.resolve().parent, default_name=default_name)
     raise ScenarioError(
         f"load_scenario: expected a path or a dict, got {type(path_or_dict).__name__}"
     )
+
+
+def _short_path(text: str) -> str:
+    """A path fit for a message: a very long one keeps its start and its end."""
+    return text if len(text) <= 160 else f"{text[:80]}...{text[-60:]} ({len(text)} characters)"
+
+
+def is_file(path: Path) -> bool:
+    """Whether ``path`` is a file; False also for a name the system refuses (too long)."""
+    try:
+        return path.is_file()
+    except OSError:  # ENAMETOOLONG and the like: no file can have that name
+        return False
 
 
 def _read_toml(path: Path, source: str) -> dict[str, Any]:
@@ -414,15 +431,24 @@ def _resolve(raw: Mapping[str, Any], src: str, base: Path, *, default_name: str)
     swarm = _section(raw, "swarm", src)
     swarm.check_keys(_SWARM_KEYS)
     name = swarm.string("name", _NAME_RE, _NAME_EXPECTED, default=default_name)
-    n = swarm.integer("agents", lo=2)
-    d = swarm.integer("dimension", lo=1, default=DEFAULTS["swarm"]["dimension"])
+    # agents first, and bounded, so that a huge swarm is refused before anything is built
+    n = swarm.integer("agents", lo=2, hi=lim.AGENTS_MAX, why=lim.WHY["agents"])
+    d = swarm.integer(
+        "dimension",
+        lo=1,
+        hi=lim.DIMENSION_MAX,
+        default=DEFAULTS["swarm"]["dimension"],
+        why=lim.WHY["dimension"],
+    )
     seed = swarm.integer("seed", lo=0, hi=_INT64_MAX, default=None)
     if seed is None:
         seed = secrets.randbelow(2**32)
     mode = swarm.choice("mode", MODES, default=DEFAULTS["swarm"]["mode"])
     if "iterations" in swarm.data and "seconds" in swarm.data:
         swarm.fail(None, "both iterations and seconds given; expected exactly one budget")
-    iterations = swarm.integer("iterations", lo=1, default=None)
+    iterations = swarm.integer(
+        "iterations", lo=1, hi=lim.ITERATIONS_MAX, default=None, why=lim.WHY["iterations"]
+    )
     seconds = swarm.number("seconds", lo=0.0, lo_open=True, default=None)
     if iterations is None and seconds is None:
         iterations = DEFAULTS["swarm"]["iterations"]
@@ -432,7 +458,20 @@ def _resolve(raw: Mapping[str, Any], src: str, base: Path, *, default_name: str)
 
     topo = _section(raw, "topology", src)
     topology = check_topology_params(topo.data, agents=n, base_dir=base, source=src)
-    objective = _objective(_section(raw, "objective", src))
+    objective = _objective(_section(raw, "objective", src), d)
+    timing = _timing(_section(raw, "timing", src))
+    if seconds is not None and seconds * 1000.0 / timing["period_ms"] > lim.ITERATIONS_MAX:
+        # a seconds budget is also a count of rounds of period_ms (rounds mode, lockstep)
+        swarm.fail(
+            "seconds",
+            f"expected a number <= {lim.ITERATIONS_MAX * timing['period_ms'] / 1000.0:g} with"
+            f" [timing].period_ms = {timing['period_ms']:g} (seconds / period counts rounds;"
+            f" {lim.WHY['iterations']}), got {_show(seconds)}",
+        )
+    faults = _faults(raw.get("fault", []), src, n)
+    overrides = _agents(raw.get("agent", []), src, n, d, objective["kind"])
+    if mode == "async":
+        lim.check_waits(src, timing, overrides, faults, n)
     return Scenario(
         source=src,
         base_dir=base,
@@ -448,10 +487,10 @@ def _resolve(raw: Mapping[str, Any], src: str, base: Path, *, default_name: str)
         objective=objective,
         priorities=_priorities(_section(raw, "priorities", src), n),
         algorithm=_algorithm(_section(raw, "algorithm", src)),
-        timing=_timing(_section(raw, "timing", src)),
+        timing=timing,
         telemetry=_telemetry(_section(raw, "telemetry", src)),
-        faults=_faults(raw.get("fault", []), src, n),
-        agent_overrides=_agents(raw.get("agent", []), src, n, d, objective["kind"]),
+        faults=faults,
+        agent_overrides=overrides,
         network=_network(_section(raw, "network", src)),
     )
 
@@ -522,8 +561,8 @@ def check_topology_params(
         path = Path(name).expanduser()
         if not path.is_absolute():
             path = Path(base_dir) / path
-        if not path.is_file():
-            t.fail("file", f'"{name}" is not a file (looked for {path})')
+        if not is_file(path):
+            t.fail("file", f"{_show(name)} is not a file (looked for {_short_path(str(path))})")
         out["file"] = str(path.resolve())
         if "directed" in t.data:  # absent: the file says (edge list marker, GraphML flag)
             out["directed"] = t.boolean("directed")
@@ -549,24 +588,49 @@ def _grid(t: _Table, agents: int, out: dict[str, Any]) -> None:
     out["rows"], out["cols"] = rows, cols
 
 
-def _objective(t: _Table) -> dict[str, Any]:
+def _objective(t: _Table, d: int) -> dict[str, Any]:
     t.check_keys(_OBJECTIVE_KEYS)
     kind = t.choice("kind", OBJECTIVE_KINDS, default=DEFAULTS["objective"]["kind"])
     t.check_keys(_OBJECTIVE_KEYS, used=("kind", *_OBJECTIVE_PARAMS[kind]), by=f'kind "{kind}"')
     out: dict[str, Any] = {"kind": kind}
     if kind == "quadratic":
+        if d > lim.QUADRATIC_DIMENSION_MAX:
+            raise ScenarioError(
+                f"{t.source}: [swarm].dimension: expected an integer <="
+                f' {lim.QUADRATIC_DIMENSION_MAX} with [objective].kind = "quadratic"'
+                f" ({lim.WHY['quadratic_dimension']}), got {d}"
+            )
         dq = DEFAULTS["objective.quadratic"]
-        out["spread"] = t.number("spread", lo=0.0, default=dq["spread"])
+        # targets are drawn in [-spread, spread]^d: their norm reaches spread * sqrt(d)
+        out["spread"] = t.number(
+            "spread",
+            lo=0.0,
+            hi=lim.MAGNITUDE_MAX / math.sqrt(d),
+            default=dq["spread"],
+            why=f"targets reach spread * sqrt(dimension) = spread * {math.sqrt(d):.4g}; "
+            + lim.WHY["magnitude"],
+        )
         out["curvature"] = t.choice("curvature", ("identity", "random"), default=dq["curvature"])
         if out["curvature"] == "random":
             out["condition"] = t.number(
-                "condition", lo=1.0, default=DEFAULTS["objective.quadratic.random"]["condition"]
+                "condition",
+                lo=1.0,
+                hi=_CONDITION_MAX,
+                default=DEFAULTS["objective.quadratic.random"]["condition"],
+                why="the reference optimum is solved in float64, which keeps about"
+                " 16 - log10(condition) correct digits",
             )
         elif "condition" in t.data:
             t.fail("condition", 'only used with curvature = "random"')
     elif kind in ("logistic", "huber"):
         dk = DEFAULTS[f"objective.{kind}"]
-        out["samples"] = t.integer("samples", lo=1, default=dk["samples"])
+        out["samples"] = t.integer(
+            "samples",
+            lo=1,
+            hi=lim.SAMPLE_NUMBERS_MAX // (d + 1),
+            default=dk["samples"],
+            why=f"with [swarm].dimension = {d}; {lim.WHY['samples']}",
+        )
         if kind == "huber":
             out["delta"] = t.number("delta", lo=0.0, lo_open=True, default=dk["delta"])
         # separable logistic data have no minimizer without a ridge term
@@ -617,7 +681,9 @@ def _algorithm(t: _Table) -> dict[str, Any]:
     for key in _ALGORITHM_KEYS[2:]:
         if key not in t.data or key in ("module", "params"):
             continue
-        if key in ("missing", "mode"):
+        if key == "missing" and module is None:
+            out[key] = _missing_policy(t, name)
+        elif key in ("missing", "mode"):
             out[key] = t.string(key, None, "a string")
         elif key == "gain":
             out[key] = t.number(key, lo=0.0)
@@ -646,6 +712,16 @@ def _algorithm(t: _Table) -> dict[str, Any]:
                 t.fail(f"params.{k}", f"expected a number, a string or a boolean, got {_show(v)}")
         out["params"] = dict(raw)
     return out
+
+
+def _missing_policy(t: _Table, name: str) -> str:
+    """[algorithm].missing of a built-in algorithm: one of the policies it declares."""
+    from node import algorithm_class
+
+    policies = algorithm_class(name).missing_policies
+    if not policies:
+        t.fail("missing", f'not used by "{name}", which has no policy for silent in-neighbours')
+    return t.choice("missing", policies)
 
 
 def _step(t: _Table, key: str, *, also: str = "") -> float | dict[str, Any]:
@@ -681,14 +757,22 @@ def _step(t: _Table, key: str, *, also: str = "") -> float | dict[str, Any]:
 def _timing(t: _Table) -> dict[str, Any]:
     dt = DEFAULTS["timing"]
     t.check_keys(tuple(dt))
+    poll = lim.WHY["poll"]
     return {
-        "period_ms": t.number("period_ms", lo=0.0, lo_open=True, default=dt["period_ms"]),
+        "period_ms": t.number(
+            "period_ms", lo=lim.PERIOD_MS_MIN, hi=lim.POLL_MS_MAX, default=dt["period_ms"], why=poll
+        ),
         "jitter": t.number("jitter", lo=0.0, hi=1.0, hi_open=True, default=dt["jitter"]),
         "speed_spread": t.number(
             "speed_spread", lo=0.0, hi=1.0, hi_open=True, default=dt["speed_spread"]
         ),
         "round_timeout_ms": t.number(
-            "round_timeout_ms", lo=0.0, lo_open=True, default=dt["round_timeout_ms"]
+            "round_timeout_ms",
+            lo=0.0,
+            lo_open=True,
+            hi=lim.POLL_MS_MAX,
+            default=dt["round_timeout_ms"],
+            why=poll,
         ),
     }
 
@@ -696,10 +780,21 @@ def _timing(t: _Table) -> dict[str, Any]:
 def _telemetry(t: _Table) -> dict[str, Any]:
     dt = DEFAULTS["telemetry"]
     t.check_keys(tuple(dt))
+    poll, its = lim.WHY["poll"], lim.WHY["iterations"]
     return {
-        "every_ms": t.number("every_ms", lo=0.0, lo_open=True, default=dt["every_ms"]),
-        "every_iterations": t.integer("every_iterations", lo=0, default=dt["every_iterations"]),
-        "batch_ms": t.number("batch_ms", lo=0.0, lo_open=True, default=dt["batch_ms"]),
+        "every_ms": t.number(
+            "every_ms", lo=0.0, lo_open=True, hi=lim.POLL_MS_MAX, default=dt["every_ms"], why=poll
+        ),
+        "every_iterations": t.integer(
+            "every_iterations",
+            lo=0,
+            hi=lim.ITERATIONS_MAX,
+            default=dt["every_iterations"],
+            why=its,
+        ),
+        "batch_ms": t.number(
+            "batch_ms", lo=0.0, lo_open=True, hi=lim.POLL_MS_MAX, default=dt["batch_ms"], why=poll
+        ),
         "delay_samples": t.boolean("delay_samples", default=dt["delay_samples"]),
     }
 
@@ -736,11 +831,13 @@ def _agents(raw: Any, src: str, n: int, d: int, kind: str) -> dict[int, dict[str
                 t.fail(key, f'only used with [objective].kind = "quadratic" (it is "{kind}")')
         why = f"[swarm].dimension = {d}"
         if "target" in t.data:
-            o["target"] = _vector(t, "target", t.data["target"], d, why)
+            o["target"] = _bounded_norm(t, "target", _vector(t, "target", t.data["target"], d, why))
         if "curvature" in t.data:
             o["curvature"] = _spd_matrix(t, "curvature", t.data["curvature"], d)
         if "initial_state" in t.data:
-            o["initial_state"] = _vector(t, "initial_state", t.data["initial_state"], d, why)
+            o["initial_state"] = _bounded_norm(
+                t, "initial_state", _vector(t, "initial_state", t.data["initial_state"], d, why)
+            )
         if "initial_priorities" in t.data:
             o["initial_priorities"] = _priority_vector(
                 t, "initial_priorities", t.data["initial_priorities"], n
@@ -798,9 +895,14 @@ def _window(t: _Table, kind: str) -> dict[str, Any]:
     df = DEFAULTS["fault"]
     out: dict[str, Any] = {}
     if iterations:
-        out["start_iteration"] = t.integer("start_iteration", lo=0, default=df["start_iteration"])
+        its = lim.WHY["iterations"]
+        out["start_iteration"] = t.integer(
+            "start_iteration", lo=0, hi=lim.ITERATIONS_MAX, default=df["start_iteration"], why=its
+        )
         if kind != "crash":
-            out["duration_iterations"] = t.integer("duration_iterations", lo=0, default=None)
+            out["duration_iterations"] = t.integer(
+                "duration_iterations", lo=0, hi=lim.ITERATIONS_MAX, default=None, why=its
+            )
         duration = out.get("duration_iterations")
     else:
         out["start_s"] = t.number("start_s", lo=0.0, default=df["start_s"])
@@ -813,39 +915,14 @@ def _window(t: _Table, kind: str) -> dict[str, Any]:
 
 
 def _fault_params(t: _Table, kind: str, distribution: str | None) -> dict[str, Any]:
-    if kind in ("loss", "duplicate", "corrupt"):
-        return {"rate": t.number("rate", lo=0.0, hi=1.0)}
-    if kind == "burst-loss":
-        # Gilbert–Elliott chain (Gilbert, BSTJ 39 (1960); Elliott, BSTJ 42 (1963))
-        db = DEFAULTS["fault.burst-loss"]
-        return {
-            "p_enter": t.number("p_enter", lo=0.0, lo_open=True, hi=1.0),
-            "p_leave": t.number("p_leave", lo=0.0, lo_open=True, hi=1.0),
-            "loss_good": t.number("loss_good", lo=0.0, hi=1.0, default=db["loss_good"]),
-            "loss_bad": t.number("loss_bad", lo=0.0, hi=1.0, default=db["loss_bad"]),
-        }
-    if kind == "delay":
-        dd = DEFAULTS["fault.delay"]
-        out: dict[str, Any] = {"distribution": distribution}
-        if distribution == "constant":
-            out["ms"] = t.number("ms", lo=0.0)
-        elif distribution == "uniform":
-            low = out["low_ms"] = t.number("low_ms", lo=0.0)
-            high = out["high_ms"] = t.number("high_ms", lo=0.0)
-            if high <= low:
-                t.fail("high_ms", f"expected a number > low_ms = {low:g}, got {_show(high)}")
-        elif distribution == "normal":
-            out["mean_ms"] = t.number("mean_ms")
-            out["sd_ms"] = t.number("sd_ms", lo=0.0, lo_open=True)
-        elif distribution == "lognormal":
-            out["median_ms"] = t.number("median_ms", lo=0.0, lo_open=True)
-            out["sigma"] = t.number("sigma", lo=0.0, lo_open=True)
-        else:
-            out["scale_ms"] = t.number("scale_ms", lo=0.0, lo_open=True)
-            out["shape"] = t.number("shape", lo=0.0, lo_open=True)
-        out["jitter_ms"] = t.number("jitter_ms", lo=0.0, default=dd["jitter_ms"])
-        out["fifo"] = t.boolean("fifo", default=dd["fifo"])
-        return out
+    if kind in LINK_FAULT_KINDS:
+        # One validator for link faults, the agents' own: the scenario and the directives an
+        # agent receives are checked by the same rules.
+        own = _FAULT_PARAMS[kind] + (DELAY_DISTRIBUTIONS[distribution] if distribution else ())
+        params = {k: t.data[k] for k in own if k in t.data}
+        if distribution is not None:
+            params["distribution"] = distribution
+        return validate_fault_params(kind, params, f"{t.source}: {t.label}")
     if kind == "crash":
         return {
             "restart_after_s": t.number("restart_after_s", lo=0.0, default=None),
@@ -954,14 +1031,23 @@ class _Table:
         return default, False
 
     def integer(
-        self, key: str, *, lo: int | None = None, hi: int | None = None, default: Any = _REQUIRED
+        self,
+        key: str,
+        *,
+        lo: int | None = None,
+        hi: int | None = None,
+        default: Any = _REQUIRED,
+        why: str = "",
     ) -> Any:
+        """``why`` explains the upper bound; it is said only when the bound is passed."""
         expected = _range_text("an integer", lo, False, hi, False)
         value, given = self._get(key, default, expected)
         if not given:
             return value
-        if not _is_int(value) or (lo is not None and value < lo) or (hi is not None and value > hi):
+        if not _is_int(value) or (lo is not None and value < lo):
             self.fail(key, f"expected {expected}, got {_show(value)}")
+        if hi is not None and value > hi:
+            self.fail(key, f"expected {expected}{_because(why)}, got {_show(value)}")
         return int(value)
 
     def number(
@@ -973,7 +1059,9 @@ class _Table:
         hi: float | None = None,
         hi_open: bool = False,
         default: Any = _REQUIRED,
+        why: str = "",
     ) -> Any:
+        """``why`` explains the upper bound; it is said only when the bound is passed."""
         expected = _range_text("a number", lo, lo_open, hi, hi_open)
         value, given = self._get(key, default, expected)
         if not given:
@@ -986,7 +1074,9 @@ class _Table:
         below = lo is not None and (x <= lo if lo_open else x < lo)
         above = hi is not None and (x >= hi if hi_open else x > hi)
         if below or above:
-            self.fail(key, f"expected {expected}, got {_show(value)}")
+            self.fail(
+                key, f"expected {expected}{_because(why) if above else ''}, got {_show(value)}"
+            )
         return x
 
     def choice(self, key: str, choices: Sequence[str], *, default: Any = _REQUIRED) -> Any:
@@ -1022,6 +1112,10 @@ class _Table:
         if given and not isinstance(value, bool):
             self.fail(key, f"expected true or false, got {_show(value)}")
         return value
+
+
+def _because(why: str) -> str:
+    return f" ({why})" if why else ""
 
 
 def _array_of_tables(raw: Any, name: str, src: str) -> list[Mapping[str, Any]]:
@@ -1072,6 +1166,17 @@ def _spd_matrix(t: _Table, key: str, value: Any, d: int) -> list[list[float]]:
     if smallest <= 1e-12 * scale:
         t.fail(key, f"not positive definite (smallest eigenvalue {smallest:.6g})")
     return rows
+
+
+def _bounded_norm(t: _Table, key: str, vec: list[float]) -> list[float]:
+    norm = math.hypot(*vec)
+    if norm > lim.MAGNITUDE_MAX:
+        t.fail(
+            key,
+            f"its norm is {norm:.4g}; expected at most {lim.MAGNITUDE_MAX:g}"
+            f" ({lim.WHY['magnitude']})",
+        )
+    return vec
 
 
 def _priority_vector(t: _Table, key: str, value: Any, n: int) -> list[float]:
@@ -1181,6 +1286,17 @@ def _lit(value: Any) -> str:
     )
 
 
+def _missing_policies_text() -> str:
+    from node import algorithm_class, algorithm_names
+
+    parts = []
+    for name in algorithm_names():
+        policies = algorithm_class(name).missing_policies
+        if policies:
+            parts.append(f"{name}: " + " or ".join(f'"{p}"' for p in policies))
+    return "; ".join(parts)
+
+
 def describe_keys() -> list[tuple[str, str, str]]:
     """Every scenario key as ``(key path, default, meaning)``, in file order.
 
@@ -1197,11 +1313,16 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "the file name without extension",
             'names the run directory; letters, digits, ".", "_", "-"',
         ),
-        ("[swarm].agents", "required", "number of agents (one OS process each), >= 2"),
+        (
+            "[swarm].agents",
+            "required",
+            f"number of agents (one OS process each), in [2, {lim.AGENTS_MAX}]",
+        ),
         (
             "[swarm].dimension",
             _lit(D["swarm"]["dimension"]),
-            "length of every agent's decision vector, >= 1",
+            f"length of every agent's decision vector, in [1, {lim.DIMENSION_MAX}]"
+            f" ({lim.QUADRATIC_DIMENSION_MAX} for quadratic objectives)",
         ),
         (
             "[swarm].seed",
@@ -1216,12 +1337,13 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[swarm].iterations",
             f"{_lit(D['swarm']['iterations'])} when seconds is absent",
-            "budget: iterations per agent, >= 1; exclusive with seconds",
+            "budget: iterations per agent, in [1, 2**53]; exclusive with seconds",
         ),
         (
             "[swarm].seconds",
             "absent",
-            "budget: seconds of the run phase, > 0; exclusive with iterations",
+            "budget: seconds of the run phase, > 0 and at most 2**53 periods;"
+            " exclusive with iterations",
         ),
         (
             "[swarm].tolerance",
@@ -1260,7 +1382,8 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[objective].spread",
             _lit(D["objective.quadratic"]["spread"]),
-            "quadratic: scale of the targets drawn from the seed (unless given per agent), >= 0",
+            "quadratic: scale of the targets drawn from the seed (unless given per agent),"
+            f" in [0, {lim.MAGNITUDE_MAX:g} / sqrt(dimension)]",
         ),
         (
             "[objective].curvature",
@@ -1270,12 +1393,13 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[objective].condition",
             f'{_lit(D["objective.quadratic.random"]["condition"])} with curvature = "random"',
-            "quadratic: condition number of the random curvatures, >= 1",
+            f"quadratic: condition number of the random curvatures, in [1, {_CONDITION_MAX:g}]",
         ),
         (
             "[objective].samples",
             _lit(D["objective.logistic"]["samples"]),
-            "logistic, huber: local data points per agent, drawn from the seed, >= 1",
+            "logistic, huber: local data points per agent, drawn from the seed, >= 1;"
+            f" samples * (dimension + 1) at most {lim.SAMPLE_NUMBERS_MAX}",
         ),
         (
             "[objective].reg",
@@ -1332,7 +1456,8 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[algorithm].missing",
             "the algorithm's",
-            'what a silent in-neighbour counts as (dgd: "reuse" the last value or "self")',
+            "what a silent in-neighbour counts as, one of the algorithm's policies"
+            f" ({_missing_policies_text()})",
         ),
         ("[algorithm].gain", "the algorithm's", "algorithm-specific gain, >= 0"),
         (
@@ -1366,7 +1491,12 @@ def describe_keys() -> list[tuple[str, str, str]]:
             "absent",
             "table of options (numbers, strings, booleans) handed unchanged to the algorithm",
         ),
-        ("[timing].period_ms", _lit(D["timing"]["period_ms"]), "async mode: iteration period, > 0"),
+        (
+            "[timing].period_ms",
+            _lit(D["timing"]["period_ms"]),
+            f"async mode: iteration period, in [{lim.PERIOD_MS_MIN:g}, {lim.POLL_MS_MAX}];"
+            f" period_ms * speed * slow factor * (1 + jitter) at most {lim.POLL_MS_MAX}",
+        ),
         (
             "[timing].jitter",
             _lit(D["timing"]["jitter"]),
@@ -1380,22 +1510,22 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[timing].round_timeout_ms",
             _lit(D["timing"]["round_timeout_ms"]),
-            "rounds mode: how long to wait for an in-neighbour's round, > 0",
+            f"rounds mode: how long to wait for an in-neighbour's round, in (0, {lim.POLL_MS_MAX}]",
         ),
         (
             "[telemetry].every_ms",
             _lit(D["telemetry"]["every_ms"]),
-            "async mode: sample interval, > 0",
+            f"async mode: sample interval, in (0, {lim.POLL_MS_MAX}]",
         ),
         (
             "[telemetry].every_iterations",
             _lit(D["telemetry"]["every_iterations"]),
-            "sample every this many iterations, >= 0; 0 = automatic",
+            "sample every this many iterations, in [0, 2**53]; 0 = automatic",
         ),
         (
             "[telemetry].batch_ms",
             _lit(D["telemetry"]["batch_ms"]),
-            "how long an agent gathers samples before pushing a batch, > 0",
+            f"how long an agent gathers samples before pushing a batch, in (0, {lim.POLL_MS_MAX}]",
         ),
         (
             "[telemetry].delay_samples",
@@ -1409,13 +1539,21 @@ def describe_keys() -> list[tuple[str, str, str]]:
         ),
         ("[network].host", _lit(D["network"]["host"]), "address the agents bind on"),
         ("[[agent]].id", "required", "the agent these overrides are for, in [0, agents - 1]"),
-        ("[[agent]].target", "drawn from the seed", "quadratic: this agent's target, d numbers"),
+        (
+            "[[agent]].target",
+            "drawn from the seed",
+            f"quadratic: this agent's target, d numbers, norm at most {lim.MAGNITUDE_MAX:g}",
+        ),
         (
             "[[agent]].curvature",
             "from [objective].curvature",
             "quadratic: this agent's d x d symmetric positive definite curvature",
         ),
-        ("[[agent]].initial_state", "the coordinator's", "this agent's starting x, d numbers"),
+        (
+            "[[agent]].initial_state",
+            "the coordinator's",
+            f"this agent's starting x, d numbers, norm at most {lim.MAGNITUDE_MAX:g}",
+        ),
         (
             "[[agent]].initial_priorities",
             "its row of [priorities].initial, else uniform",
@@ -1424,7 +1562,8 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[[agent]].speed",
             "drawn from [timing].speed_spread",
-            "async mode: this agent's speed factor, > 0",
+            "async mode: this agent's speed factor (its period is multiplied by it), > 0;"
+            f" period_ms * speed * (1 + jitter) at most {lim.POLL_MS_MAX}",
         ),
         ("[[fault]].kind", "required", kinds),
         ("[[fault]].links", "required by link faults", f"which directed links: {_SCOPE_FORMS}"),
@@ -1434,9 +1573,13 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[[fault]].start_iteration",
             _lit(D["fault"]["start_iteration"]),
-            "when it starts, iterations, >= 0 (not mixed with the seconds keys)",
+            "when it starts, iterations, in [0, 2**53] (not mixed with the seconds keys)",
         ),
-        ("[[fault]].duration_iterations", "until the end", "how long it lasts, iterations, >= 0"),
+        (
+            "[[fault]].duration_iterations",
+            "until the end",
+            "how long it lasts, iterations, in [0, 2**53]",
+        ),
         (
             "[[fault]].rate",
             "required by loss, duplicate, corrupt",
@@ -1465,15 +1608,15 @@ def describe_keys() -> list[tuple[str, str, str]]:
         (
             "[[fault]].distribution",
             _lit(D["fault.delay"]["distribution"]),
-            f"delay: one of {dists}",
+            f"delay: one of {dists}; every draw at most {lim.DELAY_MAX_MS:g} ms",
         ),
         ("[[fault]].ms", "required by constant", "delay: the constant delay, ms, >= 0"),
         ("[[fault]].low_ms", "required by uniform", "delay: lower bound, ms, >= 0"),
-        ("[[fault]].high_ms", "required by uniform", "delay: upper bound, ms, > low_ms"),
+        ("[[fault]].high_ms", "required by uniform", "delay: upper bound, ms, >= low_ms"),
         ("[[fault]].mean_ms", "required by normal", "delay: mean, ms"),
         ("[[fault]].sd_ms", "required by normal", "delay: standard deviation, ms, > 0"),
         ("[[fault]].median_ms", "required by lognormal", "delay: median, ms, > 0"),
-        ("[[fault]].sigma", "required by lognormal", "delay: sigma of the log, > 0"),
+        ("[[fault]].sigma", "required by lognormal", "delay: sigma of the log, >= 0"),
         ("[[fault]].scale_ms", "required by pareto", "delay: minimum (scale), ms, > 0"),
         ("[[fault]].shape", "required by pareto", "delay: Pareto shape (tail index), > 0"),
         (
@@ -1492,5 +1635,10 @@ def describe_keys() -> list[tuple[str, str, str]]:
             _lit(D["fault.crash"]["restart_state"]),
             'crash: restart from the "initial" or the "last" reported state',
         ),
-        ("[[fault]].factor", "required by slow", "slow: period multiplied by this, > 0"),
+        (
+            "[[fault]].factor",
+            "required by slow",
+            "slow: period multiplied by this, > 0; async mode: period_ms * speed * factor"
+            f" * (1 + jitter) at most {lim.POLL_MS_MAX}",
+        ),
     ]

@@ -116,6 +116,12 @@ class Algorithm:
     uses_priorities: ClassVar[bool] = False
     #: whether the method is meant for directed graphs (skips the symmetric-weights check)
     directed_ok: ClassVar[bool] = False
+    #: the [algorithm] options this method reads, with their values when a scenario leaves
+    #: them out (read them through :meth:`option`, so that this table is their one home)
+    option_defaults: ClassVar[Mapping[str, Any]] = {}
+    #: the values [algorithm].missing accepts (what a silent in-neighbour counts as); empty:
+    #: the method has no such option
+    missing_policies: ClassVar[tuple[str, ...]] = ()
 
     def __init__(self, spec: AgentSpec) -> None:
         self.spec = spec
@@ -131,6 +137,10 @@ class Algorithm:
         raise NotImplementedError
 
     # Helpers shared by implementations -------------------------------------------------
+    def option(self, key: str) -> Any:
+        """``spec.params[key]``, or its entry in :attr:`option_defaults` when absent."""
+        return self.spec.params.get(key, self.option_defaults[key])
+
     def gradient(self, x: np.ndarray) -> np.ndarray:
         """The local gradient, checked: shape (d,) and finite, else ObjectiveError."""
         try:

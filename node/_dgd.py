@@ -11,10 +11,12 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import numpy as np
 
 from node._algorithm import AgentSpec, Algorithm, Payload, Received, register_algorithm
+from topologies._errors import ScenarioError
 
 __all__ = ["DGD", "DGDState"]
 
@@ -28,10 +30,17 @@ class DGDState:
 @register_algorithm
 class DGD(Algorithm):
     name = "dgd"
+    option_defaults = MappingProxyType({"missing": "reuse"})
+    missing_policies = ("reuse", "self")
 
     def __init__(self, spec: AgentSpec) -> None:
         super().__init__(spec)
-        self._reuse = spec.params.get("missing", "reuse") == "reuse"
+        missing = self.option("missing")
+        if missing not in self.missing_policies:
+            raise ScenarioError(
+                f"agent {spec.id}: dgd 'missing' = {missing!r}; expected 'reuse' or 'self'"
+            )
+        self._reuse = missing == "reuse"
         self._w_self = spec.weights[spec.id]
         self._rows = tuple((j, spec.weights[j]) for j in spec.in_neighbours)
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import numpy as np
 
@@ -38,11 +39,13 @@ class TrackingState:
 @register_algorithm
 class GradientTracking(Algorithm):
     name = "gradient-tracking"
+    option_defaults = MappingProxyType({"missing": "self"})
+    missing_policies = ("self", "reuse")
 
     def __init__(self, spec: AgentSpec) -> None:
         super().__init__(spec)
-        missing = spec.params.get("missing", "self")
-        if missing not in ("self", "reuse"):
+        missing = self.option("missing")
+        if missing not in self.missing_policies:
             raise ScenarioError(
                 f"agent {spec.id}: gradient-tracking 'missing' = {missing!r};"
                 " expected 'self' or 'reuse'"

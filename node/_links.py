@@ -23,7 +23,9 @@ Rules (the runtime, the lockstep runner and the tests rely on them):
 
 from __future__ import annotations
 
+import json
 import math
+import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from statistics import NormalDist
@@ -33,6 +35,7 @@ from node._rng import stream_key, uniform
 from topologies._errors import ScenarioError
 
 __all__ = [
+    "DELAY_MAX_MS",
     "DELIVER",
     "FAULT_KINDS",
     "Decision",
@@ -68,45 +71,73 @@ _WIRE_KEYS = frozenset(
 
 
 # ---------------------------------------------------------------------------- validation
+#
+# The one validator of link-fault parameters: the scenario loader calls it for every link
+# [[fault]] table, and LinkFault calls it for every directive an agent receives, so the two
+# can never disagree. Messages read "<where>: <key>: expected ..., got ...", where ``where``
+# locates the fault, e.g. "dock.toml: [[fault]] #2".
+
+#: the largest delay one fault may draw, in ms: delays of several faults add up and are
+#: counted in whole rounds, and both must stay finite (float64 overflows at 1.8e308)
+DELAY_MAX_MS = 1e100
 
 
-def _number(params: Mapping[str, Any], key: str, where: str, default: float | None) -> float:
-    if key not in params:
-        if default is None:
-            raise ScenarioError(f"{where}.{key}: missing; expected a number")
-        return default
-    v = params[key]
-    if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
-        raise ScenarioError(f"{where}.{key}: expected a finite number, got {v!r}")
-    return float(v)
+def _show(v: Any) -> str:
+    """A value as a scenario spells it, shortened."""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, numbers.Integral):
+        return str(int(v))
+    if isinstance(v, numbers.Real):
+        return repr(float(v))
+    if isinstance(v, str):
+        text = json.dumps(v, ensure_ascii=False)
+        return text if len(text) <= 60 else text[:56] + '..."'
+    if isinstance(v, Mapping):
+        return "a table"
+    text = repr(v)
+    return text if len(text) <= 60 else text[:56] + "..."
 
 
-def _in_range(
+def _range_text(lo: float, lo_open: bool, hi: float, hi_open: bool) -> str:
+    if math.isinf(hi):
+        return f"a number {'>' if lo_open else '>='} {lo:g}"
+    return f"a number in {'(' if lo_open else '['}{lo:g}, {hi:g}{')' if hi_open else ']'}"
+
+
+def _number(
     params: Mapping[str, Any],
     key: str,
     where: str,
-    lo: float,
-    hi: float,
     *,
-    open_lo: bool = False,
+    lo: float = -math.inf,
+    lo_open: bool = False,
+    hi: float = math.inf,
     default: float | None = None,
 ) -> float:
-    v = _number(params, key, where, default)
-    if (v <= lo if open_lo else v < lo) or v > hi:
-        if math.isinf(hi):
-            want = f"a number {'>' if open_lo else '>='} {lo:g}"
-        else:
-            want = f"a number in {'(' if open_lo else '['}{lo:g}, {hi:g}]"
-        raise ScenarioError(f"{where}.{key}: expected {want}, got {v!r}")
-    return v
+    """``params[key]`` as a float in the range (or ``default`` when absent and not None)."""
+    expected = _range_text(lo, lo_open, hi, False) if lo > -math.inf else "a number"
+    if key not in params:
+        if default is None:
+            raise ScenarioError(f"{where}: {key}: missing; expected {expected}")
+        return default
+    v = params[key]
+    if isinstance(v, bool) or not isinstance(v, numbers.Real):
+        raise ScenarioError(f"{where}: {key}: expected {expected}, got {_show(v)}")
+    x = float(v)
+    if not math.isfinite(x):
+        raise ScenarioError(f"{where}: {key}: expected a finite number, got {_show(v)}")
+    if (x <= lo if lo_open else x < lo) or x > hi:
+        raise ScenarioError(f"{where}: {key}: expected {expected}, got {_show(v)}")
+    return x
 
 
 def _no_extra(params: Mapping[str, Any], allowed: set[str], where: str, what: str) -> None:
-    extra = sorted(set(params) - allowed)
+    extra = sorted(set(params) - allowed, key=str)
     if extra:
         keys = ", ".join(sorted(allowed)) if allowed else "none"
         raise ScenarioError(
-            f"{where}.{extra[0]}: unknown parameter for {what}; expected only: {keys}"
+            f"{where}: {extra[0]}: unknown parameter for {what}; expected only: {keys}"
         )
 
 
@@ -114,72 +145,89 @@ def validate_fault_params(kind: str, params: Mapping[str, Any], where: str) -> d
     """Check one link fault's parameters and return them with every default filled.
 
     ``params`` holds only the kind's own parameters (not ``kind``, ``links`` or the window);
-    ``where`` locates the fault, e.g. ``"scenario.toml: fault[2]"``, and every message names
-    ``where.key`` and what was expected. Raises :class:`ScenarioError`.
+    ``where`` locates the fault, e.g. ``"dock.toml: [[fault]] #2"``, and every message reads
+    ``"<where>: <key>: expected ..., got ..."``. Raises :class:`ScenarioError`.
 
     loss, duplicate, corrupt: ``rate`` in [0, 1]. burst-loss: ``p_enter``, ``p_leave`` in
     (0, 1], ``loss_good`` (0.0) and ``loss_bad`` (1.0) in [0, 1]. delay: ``distribution`` and
-    its parameters in milliseconds, ``jitter_ms`` >= 0 (0.0), ``fifo`` (False). outage: none.
+    its parameters in milliseconds, ``jitter_ms`` >= 0 (0.0), ``fifo`` (False); the largest
+    delay it can draw must be at most :data:`DELAY_MAX_MS`. outage: none. A degenerate
+    distribution (uniform with ``high_ms == low_ms``, lognormal with ``sigma == 0``) is a
+    constant delay and is accepted.
     """
     if not isinstance(params, Mapping):
-        raise ScenarioError(f"{where}: expected a table of parameters, got {params!r}")
+        raise ScenarioError(f"{where}: expected a table of parameters, got {_show(params)}")
     if kind in ("loss", "duplicate", "corrupt"):
         _no_extra(params, {"rate"}, where, kind)
-        return {"rate": _in_range(params, "rate", where, 0.0, 1.0)}
+        return {"rate": _number(params, "rate", where, lo=0.0, hi=1.0)}
     if kind == "burst-loss":
         _no_extra(params, {"p_enter", "p_leave", "loss_good", "loss_bad"}, where, kind)
         return {
-            "p_enter": _in_range(params, "p_enter", where, 0.0, 1.0, open_lo=True),
-            "p_leave": _in_range(params, "p_leave", where, 0.0, 1.0, open_lo=True),
-            "loss_good": _in_range(params, "loss_good", where, 0.0, 1.0, default=0.0),
-            "loss_bad": _in_range(params, "loss_bad", where, 0.0, 1.0, default=1.0),
+            "p_enter": _number(params, "p_enter", where, lo=0.0, lo_open=True, hi=1.0),
+            "p_leave": _number(params, "p_leave", where, lo=0.0, lo_open=True, hi=1.0),
+            "loss_good": _number(params, "loss_good", where, lo=0.0, hi=1.0, default=0.0),
+            "loss_bad": _number(params, "loss_bad", where, lo=0.0, hi=1.0, default=1.0),
         }
     if kind == "outage":
         _no_extra(params, set(), where, kind)
         return {}
     if kind == "delay":
         return _validate_delay(params, where)
-    raise ScenarioError(f"{where}.kind: expected one of {', '.join(FAULT_KINDS)}, got {kind!r}")
+    raise ScenarioError(
+        f"{where}: kind: expected one of {', '.join(FAULT_KINDS)}, got {_show(kind)}"
+    )
 
 
 def _validate_delay(params: Mapping[str, Any], where: str) -> dict[str, Any]:
     dist = params.get("distribution")
     if dist not in DELAY_DISTRIBUTIONS:
         raise ScenarioError(
-            f"{where}.distribution: expected one of {', '.join(DELAY_DISTRIBUTIONS)}, got {dist!r}"
+            f"{where}: distribution: expected one of {', '.join(DELAY_DISTRIBUTIONS)},"
+            f" got {_show(dist)}"
         )
-    inf = math.inf
     out: dict[str, Any] = {"distribution": dist}
     if dist == "constant":
-        own = {"ms"}
-        out["ms"] = _in_range(params, "ms", where, 0.0, inf)
+        own = ("ms",)
+        out["ms"] = _number(params, "ms", where, lo=0.0)
     elif dist == "uniform":
-        own = {"low_ms", "high_ms"}
-        out["low_ms"] = _in_range(params, "low_ms", where, 0.0, inf)
-        out["high_ms"] = _in_range(params, "high_ms", where, 0.0, inf)
-        if out["high_ms"] < out["low_ms"]:
+        own = ("low_ms", "high_ms")
+        low = out["low_ms"] = _number(params, "low_ms", where, lo=0.0)
+        if "high_ms" in params and _number(params, "high_ms", where, lo=0.0) < low:
             raise ScenarioError(
-                f"{where}.high_ms: expected at least low_ms = {out['low_ms']:g}, "
-                f"got {out['high_ms']:g}"
+                f"{where}: high_ms: expected a number >= low_ms = {low:g},"
+                f" got {_show(params['high_ms'])}"
             )
+        out["high_ms"] = _number(params, "high_ms", where, lo=0.0)
     elif dist == "normal":
-        own = {"mean_ms", "sd_ms"}
-        out["mean_ms"] = _number(params, "mean_ms", where, None)
-        out["sd_ms"] = _in_range(params, "sd_ms", where, 0.0, inf, open_lo=True)
+        own = ("mean_ms", "sd_ms")
+        out["mean_ms"] = _number(params, "mean_ms", where)
+        out["sd_ms"] = _number(params, "sd_ms", where, lo=0.0, lo_open=True)
     elif dist == "lognormal":
-        own = {"median_ms", "sigma"}
-        out["median_ms"] = _in_range(params, "median_ms", where, 0.0, inf, open_lo=True)
-        out["sigma"] = _in_range(params, "sigma", where, 0.0, inf)
+        own = ("median_ms", "sigma")
+        out["median_ms"] = _number(params, "median_ms", where, lo=0.0, lo_open=True)
+        out["sigma"] = _number(params, "sigma", where, lo=0.0)
     else:  # pareto
-        own = {"scale_ms", "shape"}
-        out["scale_ms"] = _in_range(params, "scale_ms", where, 0.0, inf, open_lo=True)
-        out["shape"] = _in_range(params, "shape", where, 0.0, inf, open_lo=True)
-    _no_extra(params, own | {"distribution", "jitter_ms", "fifo"}, where, f"delay {dist}")
-    out["jitter_ms"] = _in_range(params, "jitter_ms", where, 0.0, inf, default=0.0)
+        own = ("scale_ms", "shape")
+        out["scale_ms"] = _number(params, "scale_ms", where, lo=0.0, lo_open=True)
+        out["shape"] = _number(params, "shape", where, lo=0.0, lo_open=True)
+    _no_extra(params, {*own, "distribution", "jitter_ms", "fifo"}, where, f"delay {dist}")
+    out["jitter_ms"] = _number(params, "jitter_ms", where, lo=0.0, default=0.0)
     fifo = params.get("fifo", False)
     if not isinstance(fifo, bool):
-        raise ScenarioError(f"{where}.fifo: expected true or false, got {fifo!r}")
+        raise ScenarioError(f"{where}: fifo: expected true or false, got {_show(fifo)}")
     out["fifo"] = fifo
+    # The inverse CDF is increasing: its largest draw is at the largest u the streams give.
+    try:
+        largest = _delay_sampler(out)(_ONE_MINUS) + out["jitter_ms"]
+    except OverflowError:
+        largest = math.inf
+    if not largest <= DELAY_MAX_MS:
+        key = "jitter_ms" if out["jitter_ms"] > DELAY_MAX_MS / 2 else own[-1]
+        raise ScenarioError(
+            f"{where}: {key}: this delay can draw {largest:.3g} ms; expected every draw to be"
+            f" at most {DELAY_MAX_MS:g} ms (delays add up and are counted in rounds, and"
+            " must stay finite numbers)"
+        )
     return out
 
 
@@ -224,20 +272,20 @@ class LinkFault:
     end_iteration: int | None = None
 
     def __post_init__(self) -> None:
-        where = f"fault[{self.index}]"
+        where = f"[[fault]] #{self.index}"
         if isinstance(self.index, bool) or not isinstance(self.index, int):
             raise ScenarioError(f"fault index: expected an integer, got {self.index!r}")
         if not 0 <= self.index < _LINK_PART:
             raise ScenarioError(f"{where}: index expected in [0, 2**32), got {self.index}")
         if self.kind not in FAULT_KINDS:
             raise ScenarioError(
-                f"{where}.kind: expected one of {', '.join(FAULT_KINDS)}, got {self.kind!r}"
+                f"{where}: kind: expected one of {', '.join(FAULT_KINDS)}, got {self.kind!r}"
             )
         object.__setattr__(self, "params", validate_fault_params(self.kind, self.params, where))
-        s0 = _window_bound(self.start_s, f"{where}.start_s", False)
-        s1 = _window_bound(self.end_s, f"{where}.end_s", False)
-        i0 = _window_bound(self.start_iteration, f"{where}.start_iteration", True)
-        i1 = _window_bound(self.end_iteration, f"{where}.end_iteration", True)
+        s0 = _window_bound(self.start_s, f"{where}: start_s", False)
+        s1 = _window_bound(self.end_s, f"{where}: end_s", False)
+        i0 = _window_bound(self.start_iteration, f"{where}: start_iteration", True)
+        i1 = _window_bound(self.end_iteration, f"{where}: end_iteration", True)
         object.__setattr__(self, "start_s", s0)
         object.__setattr__(self, "end_s", s1)
         if (s0 is not None or s1 is not None) and (i0 is not None or i1 is not None):
@@ -247,10 +295,10 @@ class LinkFault:
             )
         for lo, hi, name in ((s0, s1, "s"), (i0, i1, "iteration")):
             if hi is not None and lo is None:
-                raise ScenarioError(f"{where}.end_{name}: given without start_{name}")
+                raise ScenarioError(f"{where}: end_{name}: given without start_{name}")
             if hi is not None and hi < lo:
                 raise ScenarioError(
-                    f"{where}.end_{name}: expected at least start_{name} = {lo}, got {hi}"
+                    f"{where}: end_{name}: expected at least start_{name} = {lo}, got {hi}"
                 )
 
     @property
@@ -295,7 +343,7 @@ class LinkFault:
                 raise ScenarioError(f"{where}: missing key {key!r}")
         params = d.get("params", {})
         if not isinstance(params, Mapping):
-            raise ScenarioError(f"{where}.params: expected a mapping, got {params!r}")
+            raise ScenarioError(f"{where}: params: expected a mapping, got {params!r}")
         try:
             return cls(
                 index=d["index"],

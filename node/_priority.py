@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import numpy as np
 
@@ -74,23 +75,27 @@ def _checked_priorities(spec: AgentSpec) -> np.ndarray:
 class PriorityWeighted(Algorithm):
     name = "priority-weighted"
     uses_priorities = True
+    #: gain 0 keeps the initial vectors; the coordinator sets it from [priorities].gain
+    option_defaults = MappingProxyType(
+        {"priority_averaging": "laplacian", "missing": "same-rule", "gain": 0.0}
+    )
+    missing_policies = ("same-rule", "reuse")
 
     def __init__(self, spec: AgentSpec) -> None:
         super().__init__(spec)
-        params = spec.params
-        averaging = params.get("priority_averaging", "laplacian")
+        averaging = self.option("priority_averaging")
         if averaging not in ("laplacian", "ratio"):
             raise ScenarioError(
                 f"agent {spec.id}: priority-weighted 'priority_averaging' = {averaging!r};"
                 " expected 'laplacian' or 'ratio'"
             )
-        missing = params.get("missing", "same-rule")
-        if missing not in ("same-rule", "reuse"):
+        missing = self.option("missing")
+        if missing not in self.missing_policies:
             raise ScenarioError(
                 f"agent {spec.id}: priority-weighted 'missing' = {missing!r};"
                 " expected 'same-rule' or 'reuse'"
             )
-        gain = float(params.get("gain", 0.0))
+        gain = float(self.option("gain"))
         degree = len(spec.in_neighbours)
         # c < 1/degree keeps w_i a convex combination (Olfati-Saber, Fax, Murray 2007)
         if not (gain >= 0.0 and gain * degree < 1.0):

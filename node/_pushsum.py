@@ -26,6 +26,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import numpy as np
 
@@ -57,10 +58,12 @@ class PushSumState:
 class PushSum(Algorithm):
     name = "push-sum"
     directed_ok = True
+    #: step_rule, absent by default, replaces scale when given
+    option_defaults = MappingProxyType({"mode": "optimize", "scale": 1.0})
 
     def __init__(self, spec: AgentSpec) -> None:
         super().__init__(spec)
-        mode = spec.params.get("mode", "optimize")
+        mode = self.option("mode")
         if mode not in ("average", "optimize"):
             raise ScenarioError(
                 f"agent {spec.id}: push-sum 'mode' = {mode!r}; expected 'average' or 'optimize'"
@@ -69,7 +72,7 @@ class PushSum(Algorithm):
         self._shares = len(spec.out_neighbours) + 1
         rule = spec.params.get("step_rule")
         if rule is None:
-            scale = float(spec.params.get("scale", 1.0))
+            scale = float(self.option("scale"))
             self._rule = StepRule(rule="diminishing", scale=scale, power=0.5)
         elif rule == "plan":
             self._rule = spec.step

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from types import MappingProxyType
 
 import numpy as np
 
@@ -105,10 +106,11 @@ class RatioConsensus(Algorithm):
 
     name = "ratio-consensus"
     directed_ok = True
+    option_defaults = MappingProxyType({"average_priorities": False})
 
     def __init__(self, spec: AgentSpec) -> None:
         super().__init__(spec)
-        average = spec.params.get("average_priorities", False)
+        average = self.option("average_priorities")
         if not isinstance(average, bool):
             raise ScenarioError(
                 f"agent {spec.id}: ratio-consensus 'average_priorities' = {average!r};"

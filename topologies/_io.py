@@ -76,16 +76,19 @@ def _read_edge_list(p: Path, name: str, directed: bool | None) -> tuple[nx.Graph
                 marked = word == "directed"
             continue
         fields = [f for f in _SEPARATORS.split(content) if f]
+        # Messages describe the line and never quote it: the path may name any readable file,
+        # and an error must not show its contents.
         if len(fields) != 2:
             raise TopologyError(
-                f"{name}, line {lineno}: expected one link 'u v' (two agent ids), got {content!r}"
+                f"{name}, line {lineno}: expected one link 'u v' (two agent ids), got a line"
+                f" of {len(fields)} field{'' if len(fields) == 1 else 's'}; is this an edge list?"
             )
         ends = []
-        for token in fields:
+        for position, token in enumerate(fields, start=1):
             if not _AGENT_ID.fullmatch(token):
                 raise TopologyError(
-                    f"{name}, line {lineno}: agent label {token!r} is not a non-negative"
-                    " integer; expected agents numbered 0..n-1"
+                    f"{name}, line {lineno}: field {position} is not a non-negative integer;"
+                    " expected agents numbered 0..n-1"
                 )
             ends.append(int(token))
         u, v = ends

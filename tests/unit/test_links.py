@@ -300,35 +300,43 @@ def test_params_defaults_are_filled() -> None:
 @pytest.mark.parametrize(
     ("kind", "params", "match"),
     [
-        ("loss", {"rate": 1.5}, r"scenario.toml: fault\[2\].rate: expected a number in \[0, 1\]"),
-        ("loss", {}, r"fault\[2\].rate: missing"),
-        ("loss", {"rate": True}, r"fault\[2\].rate: expected a finite number"),
-        ("loss", {"rate": 0.1, "p": 2}, r"fault\[2\].p: unknown parameter for loss"),
+        (
+            "loss",
+            {"rate": 1.5},
+            r"^scenario.toml: \[\[fault\]\] #2: rate: expected a number in \[0, 1\], got 1.5$",
+        ),
+        ("loss", {}, r"#2: rate: missing; expected a number in \[0, 1\]$"),
+        ("loss", {"rate": True}, r"#2: rate: expected a number in \[0, 1\], got true$"),
+        ("loss", {"rate": 0.1, "p": 2}, r"#2: p: unknown parameter for loss"),
         ("burst-loss", {"p_enter": 0.0, "p_leave": 0.5}, r"p_enter: expected a number in \(0, 1\]"),
         ("delay", {"distribution": "gamma"}, r"distribution: expected one of constant"),
         (
             "delay",
             {"distribution": "uniform", "low_ms": 3, "high_ms": 1},
-            r"high_ms: expected at least",
+            r"high_ms: expected a number >= low_ms = 3, got 1$",
         ),
         (
             "delay",
             {"distribution": "normal", "mean_ms": 3, "sd_ms": 0},
             r"sd_ms: expected a number > 0, got 0",
         ),
-        ("delay", {"distribution": "pareto", "scale_ms": 1, "shape": 2, "ms": 3}, r"\.ms: unknown"),
+        (
+            "delay",
+            {"distribution": "pareto", "scale_ms": 1, "shape": 2, "ms": 3},
+            r"#2: ms: unknown",
+        ),
         (
             "delay",
             {"distribution": "constant", "ms": 1, "fifo": 1},
             r"fifo: expected true or false",
         ),
         ("outage", {"rate": 0.5}, r"rate: unknown parameter for outage; expected only: none"),
-        ("crash", {}, r"fault\[2\].kind: expected one of loss"),
+        ("crash", {}, r"#2: kind: expected one of loss"),
     ],
 )
 def test_bad_params_name_the_key(kind: str, params: dict, match: str) -> None:
     with pytest.raises(ScenarioError, match=match):
-        validate_fault_params(kind, params, "scenario.toml: fault[2]")
+        validate_fault_params(kind, params, "scenario.toml: [[fault]] #2")
 
 
 @pytest.mark.parametrize(
@@ -365,7 +373,7 @@ def test_from_wire_rejects_malformed_directives() -> None:
         )
     with pytest.raises(ScenarioError, match="missing key 'kind'"):
         LinkFault.from_wire({"index": 0})
-    with pytest.raises(ScenarioError, match=r"fault directive: fault\[0\].rate"):
+    with pytest.raises(ScenarioError, match=r"fault directive: \[\[fault\]\] #0: rate"):
         LinkFault.from_wire({"index": 0, "kind": "loss", "params": {"rate": -1}})
     with pytest.raises(ScenarioError, match="expected a mapping"):
         LinkFault.from_wire([1, 2])  # type: ignore[arg-type]

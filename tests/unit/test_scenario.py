@@ -368,12 +368,13 @@ def test_priority_sums_are_checked_within_1e_9() -> None:
 
 def test_dict_errors_name_the_source() -> None:
     with pytest.raises(
-        ScenarioError, match=exact("<dict>: [swarm].agents: missing; expected an integer >= 2")
+        ScenarioError,
+        match=exact("<dict>: [swarm].agents: missing; expected an integer in [2, 4096]"),
     ):
         load_scenario({"topology": {"shape": "ring"}})
     with pytest.raises(
         ScenarioError,
-        match=exact("notebook cell 3: [swarm].agents: expected an integer >= 2, got 1"),
+        match=exact("notebook cell 3: [swarm].agents: expected an integer in [2, 4096], got 1"),
     ):
         load_scenario(doc(swarm={"agents": 1}), source="notebook cell 3")
 
@@ -484,12 +485,12 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
     (
         "string for integer",
         doc(swarm={"agents": "twelve"}),
-        exact('dock.toml: [swarm].agents: expected an integer >= 2, got "twelve"'),
+        exact('dock.toml: [swarm].agents: expected an integer in [2, 4096], got "twelve"'),
     ),
     (
         "float for integer",
         doc(swarm={"dimension": 2.0}),
-        exact("dock.toml: [swarm].dimension: expected an integer >= 1, got 2.0"),
+        exact("dock.toml: [swarm].dimension: expected an integer in [1, 63000], got 2.0"),
     ),
     (
         "bool for integer",
@@ -545,7 +546,7 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
     (
         "too few agents",
         doc(swarm={"agents": 1}),
-        exact("dock.toml: [swarm].agents: expected an integer >= 2, got 1"),
+        exact("dock.toml: [swarm].agents: expected an integer in [2, 4096], got 1"),
     ),
     (
         "jitter of one period",
@@ -630,7 +631,7 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
         exact("dock.toml: [priorities].gain: expected a number >= 0, got -0.5"),
     ),
     (
-        "high_ms not above low_ms",
+        "high_ms below low_ms",
         doc(
             fault=[
                 {
@@ -638,11 +639,11 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
                     "links": "all",
                     "distribution": "uniform",
                     "low_ms": 5,
-                    "high_ms": 5,
+                    "high_ms": 4.5,
                 }
             ]
         ),
-        exact("dock.toml: [[fault]] #0: high_ms: expected a number > low_ms = 5, got 5.0"),
+        exact("dock.toml: [[fault]] #0: high_ms: expected a number >= low_ms = 5, got 4.5"),
     ),
     (
         "zero slow factor",
@@ -1010,3 +1011,321 @@ def test_unreadable_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Non
         ScenarioError, match=exact("latin1.toml: line 2: not UTF-8 text; expected a TOML file")
     ):
         load_scenario("latin1.toml")
+
+
+# ------------------------------------------------------------------- what the runtime can do
+
+POLL = (
+    "an agent waits for its next iteration in one poll, whose timeout is a 32-bit count of"
+    " milliseconds: at most 2147483647 ms, about 24.8 days"
+)
+ITS = "iteration numbers are kept as float64 in telemetry and metrics, exact up to 2**53"
+MAGNITUDE = (
+    "an agent whose state's norm reaches 1e+12 counts as diverged, and the scenario's own"
+    " scale stays 1000 times below that"
+)
+ASYNC = {"agents": 6, "seed": 1, "mode": "async", "seconds": 1.0}
+
+BEYOND_THE_RUNTIME: list[tuple[str, dict[str, Any], str]] = [
+    (
+        "period too long for one poll",
+        doc(timing={"period_ms": 1e308}),
+        f"dock.toml: [timing].period_ms: expected a number in [0.001, 2147483647] ({POLL}),"
+        " got 1e+308",
+    ),
+    (
+        "speed too large for one poll",
+        doc(swarm=ASYNC, agent=[{"id": 1, "speed": 9.2e18}]),
+        "dock.toml: [[agent]] id=1: speed: expected a number <= 1.95226e+09 with"
+        f" [timing].period_ms = 1 and jitter = 0.1 ({POLL}), got 9.2e+18",
+    ),
+    (
+        "slow factor too large for one poll",
+        doc(
+            swarm=ASYNC,
+            timing={"period_ms": 1000.0, "jitter": 0.0},
+            fault=[{"kind": "slow", "agents": [2, 3], "factor": 1e7}],
+        ),
+        "dock.toml: [[fault]] #0: factor: expected a number <= 2.14748e+06 for agent 2 with"
+        f" [timing].period_ms = 1000 ({POLL}), got 10000000.0",
+    ),
+    (
+        "period with jitter and speed spread",
+        doc(swarm=ASYNC, timing={"period_ms": 2e9, "jitter": 0.5, "speed_spread": 0.5}),
+        "dock.toml: [timing].period_ms: expected a number <= 9.54437e+08 with jitter = 0.5 and"
+        f" speed_spread = 0.5 ({POLL}), got 2000000000.0",
+    ),
+    (
+        "round timeout",
+        doc(timing={"round_timeout_ms": 3e9}),
+        "dock.toml: [timing].round_timeout_ms: expected a number in (0, 2147483647]"
+        f" ({POLL}), got 3000000000.0",
+    ),
+    (
+        "telemetry batch",
+        doc(telemetry={"batch_ms": 1e300}),
+        f"dock.toml: [telemetry].batch_ms: expected a number in (0, 2147483647] ({POLL}),"
+        " got 1e+300",
+    ),
+    (
+        "spread gives an infinite F*",
+        doc(objective={"spread": 1e308}),
+        "dock.toml: [objective].spread: expected a number in [0, 7.07107e+08] (targets reach"
+        f" spread * sqrt(dimension) = spread * 1.414; {MAGNITUDE}), got 1e+308",
+    ),
+    (
+        "a million agents",
+        doc(swarm={"agents": 10**6}),
+        "dock.toml: [swarm].agents: expected an integer in [2, 4096] (the coordinator builds"
+        " dense agents x agents matrices for the graph spectrum, the mixing weights and the"
+        " priorities, and starts one OS process per agent), got 1000000",
+    ),
+    (
+        "quadratic dimension",
+        doc(swarm={"dimension": 5000}),
+        "dock.toml: [swarm].dimension: expected an integer <= 1900 with [objective].kind ="
+        ' "quadratic" (each agent\'s plan carries its d x d curvature matrix in one control'
+        " frame of at most 64 MiB), got 5000",
+    ),
+    (
+        "data frame dimension",
+        doc(swarm={"dimension": 10**6}, objective={"kind": "logistic"}),
+        "dock.toml: [swarm].dimension: expected an integer in [1, 63000] (a data frame carries"
+        " up to two vectors of this length in at most 1048576 bytes), got 1000000",
+    ),
+    (
+        "local data per agent",
+        doc(swarm={"dimension": 1000}, objective={"kind": "logistic", "samples": 10**6}),
+        "dock.toml: [objective].samples: expected an integer in [1, 3724] (with"
+        " [swarm].dimension = 1000; each agent's local data, samples x (dimension + 1)"
+        " numbers, travels in its plan, one control frame of at most 64 MiB), got 1000000",
+    ),
+    (
+        "iterations",
+        doc(swarm={"agents": 6, "iterations": 2**60}),
+        f"dock.toml: [swarm].iterations: expected an integer in [1, {2**53}] ({ITS}), got {2**60}",
+    ),
+    (
+        "seconds count rounds",
+        doc(swarm={"agents": 6, "seconds": 1e300}),
+        "dock.toml: [swarm].seconds: expected a number <= 9.0072e+12 with [timing].period_ms"
+        f" = 1 (seconds / period counts rounds; {ITS}), got 1e+300",
+    ),
+    (
+        "iteration window",
+        doc(fault=[{"kind": "outage", "links": "all", "start_iteration": 2**60}]),
+        f"dock.toml: [[fault]] #0: start_iteration: expected an integer in [0, {2**53}]"
+        f" ({ITS}), got {2**60}",
+    ),
+    (
+        "target beyond the divergence threshold",
+        doc(agent=[{"id": 2, "target": [3e12, 0.0]}]),
+        f"dock.toml: [[agent]] id=2: target: its norm is 3e+12; expected at most 1e+09"
+        f" ({MAGNITUDE})",
+    ),
+    (
+        "initial state beyond the divergence threshold",
+        doc(agent=[{"id": 0, "initial_state": [1e9, 1e9]}]),
+        f"dock.toml: [[agent]] id=0: initial_state: its norm is 1.414e+09; expected at most"
+        f" 1e+09 ({MAGNITUDE})",
+    ),
+    (
+        "condition number",
+        doc(objective={"curvature": "random", "condition": 1e20}),
+        "dock.toml: [objective].condition: expected a number in [1, 1e+12] (the reference"
+        " optimum is solved in float64, which keeps about 16 - log10(condition) correct"
+        " digits), got 1e+20",
+    ),
+    (
+        "pareto tail that overflows",
+        doc(
+            fault=[
+                {
+                    "kind": "delay",
+                    "links": "all",
+                    "distribution": "pareto",
+                    "scale_ms": 1,
+                    "shape": 0.1,
+                }
+            ]
+        ),
+        "dock.toml: [[fault]] #0: shape: this delay can draw 3.51e+159 ms; expected every draw"
+        " to be at most 1e+100 ms (delays add up and are counted in rounds, and must stay"
+        " finite numbers)",
+    ),
+    (
+        "lognormal tail that overflows",
+        doc(
+            fault=[
+                {
+                    "kind": "delay",
+                    "links": "all",
+                    "distribution": "lognormal",
+                    "median_ms": 5,
+                    "sigma": 200,
+                }
+            ]
+        ),
+        "dock.toml: [[fault]] #0: sigma: this delay can draw inf ms; expected every draw to be"
+        " at most 1e+100 ms (delays add up and are counted in rounds, and must stay finite"
+        " numbers)",
+    ),
+    (
+        "constant delay beyond the bound",
+        doc(fault=[{"kind": "delay", "links": "all", "ms": 1e300}]),
+        "dock.toml: [[fault]] #0: ms: this delay can draw 1e+300 ms; expected every draw to be"
+        " at most 1e+100 ms (delays add up and are counted in rounds, and must stay finite"
+        " numbers)",
+    ),
+    (
+        "unknown missing policy",
+        doc(algorithm={"missing": "sefl"}),
+        'dock.toml: [algorithm].missing: expected one of "reuse", "self", got "sefl"'
+        ' (did you mean "self"?)',
+    ),
+    (
+        "missing policy of priority-weighted",
+        doc(algorithm={"name": "priority-weighted", "missing": "self"}),
+        'dock.toml: [algorithm].missing: expected one of "same-rule", "reuse", got "self"',
+    ),
+    (
+        "missing policy where there is none",
+        doc(algorithm={"name": "push-sum", "missing": "reuse"}),
+        'dock.toml: [algorithm].missing: not used by "push-sum", which has no policy for'
+        " silent in-neighbours",
+    ),
+]
+
+
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [(c, m) for _, c, m in BEYOND_THE_RUNTIME],
+    ids=[i for i, _, _ in BEYOND_THE_RUNTIME],
+)
+def test_values_beyond_the_runtime_are_refused_with_bound_and_reason(
+    dock, content: dict[str, Any], message: str
+) -> None:
+    with pytest.raises(ScenarioError, match=exact(message)):
+        dock(content)
+
+
+def test_values_at_the_runtime_bounds_are_accepted() -> None:
+    import coordinator._limits as lim
+
+    s = load_scenario(
+        doc(
+            swarm={**ASYNC, "agents": lim.AGENTS_MAX},
+            timing={"period_ms": 1e6, "jitter": 0.0},
+            agent=[{"id": 1, "speed": lim.POLL_MS_MAX / 1e6, "target": [lim.MAGNITUDE_MAX, 0]}],
+            objective={"spread": lim.MAGNITUDE_MAX / math.sqrt(2)},
+        )
+    )
+    assert s.agents == lim.AGENTS_MAX
+    assert s.agent_overrides[1]["speed"] == lim.POLL_MS_MAX / 1e6
+    # rounds mode never multiplies the period by speeds or slow factors
+    load_scenario(doc(fault=[{"kind": "slow", "agents": [1], "factor": 1e12}]))
+
+
+def test_a_huge_swarm_is_refused_before_anything_is_built() -> None:
+    import tracemalloc
+
+    # priorities for a million agents would be refused only after a million vectors were
+    # checked; the agent count must be refused first, without allocating anything big
+    content = doc(swarm={"agents": 10**6}, priorities={"initial": [[1.0]]})
+    tracemalloc.start()
+    try:
+        with pytest.raises(ScenarioError, match=r"\[swarm\]\.agents: expected an integer in"):
+            load_scenario(content)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert peak < 1 << 20, f"refusing the agent count allocated {peak} bytes"
+
+
+def test_a_too_long_path_gets_a_clear_error(tmp_path: Path) -> None:
+    import coordinator
+
+    name = "a" * 5000 + ".toml"
+    with pytest.raises(ScenarioError) as err:
+        load_scenario(name)
+    text = str(err.value)
+    assert text.endswith("cannot read the scenario file: File name too long")
+    assert "(5005 characters)" in text and len(text) < 300
+    with pytest.raises(ScenarioError, match="File name too long"):
+        coordinator.load(name)
+    with pytest.raises(ScenarioError, match=r"\[topology\]\.file: .* is not a file"):
+        load_scenario(
+            doc(topology={"shape": "file", "file": "g" * 5000 + ".txt"}), base_dir=tmp_path
+        )
+
+
+@pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
+def test_a_reference_that_overflows_is_refused() -> None:
+    import coordinator
+
+    # every scale is bounded, but a curvature's entries are not: F* overflows float64 here
+    huge = [[1e300, 0.0], [0.0, 1e300]]
+    content = doc(
+        agent=[
+            {"id": 0, "curvature": huge, "target": [1e8, 0.0]},
+            {"id": 1, "curvature": huge, "target": [-1e8, 0.0]},
+        ]
+    )
+    with pytest.raises(ScenarioError, match=r"^<dict>: the reference optimum is not finite"):
+        coordinator.load(content)
+
+
+# ------------------------------------------------------------------- one fault validator
+
+LINK_PARAMS = [
+    # degenerate distributions are constant delays: both sides accept them
+    ("uniform, high = low", {"distribution": "uniform", "low_ms": 5, "high_ms": 5}, None),
+    ("lognormal, sigma = 0", {"distribution": "lognormal", "median_ms": 3, "sigma": 0}, None),
+    (
+        "uniform, high < low",
+        {"distribution": "uniform", "low_ms": 5, "high_ms": 4},
+        "high_ms: expected a number >= low_ms = 5, got 4",
+    ),
+    (
+        "normal, sd = 0",
+        {"distribution": "normal", "mean_ms": 3, "sd_ms": 0},
+        "sd_ms: expected a number > 0, got 0",
+    ),
+    (
+        "lognormal, sigma < 0",
+        {"distribution": "lognormal", "median_ms": 3, "sigma": -1},
+        "sigma: expected a number >= 0, got -1",
+    ),
+    ("pareto, shape = 0", {"distribution": "pareto", "scale_ms": 1, "shape": 0}, "shape: expected"),
+    ("negative jitter", {"distribution": "constant", "ms": 1, "jitter_ms": -1}, "jitter_ms: exp"),
+]
+
+
+@pytest.mark.parametrize(
+    ("params", "error"), [(p, e) for _, p, e in LINK_PARAMS], ids=[i for i, _, _ in LINK_PARAMS]
+)
+def test_scenario_and_agents_validate_link_faults_alike(
+    params: dict[str, Any], error: str | None
+) -> None:
+    from node._links import LinkFault, LinkModel
+
+    table = {"kind": "delay", "links": "all", **params}
+    outcomes = []
+    for check in (
+        lambda: load_scenario(doc(fault=[table])).faults[0]["params"],
+        lambda: dict(LinkFault(index=0, kind="delay", params=params).params),
+    ):
+        try:
+            outcomes.append(("ok", check()))
+        except ScenarioError as exc:
+            outcomes.append(("refused", str(exc).split("#0: ", 1)[1]))
+    assert outcomes[0] == outcomes[1]
+    if error is None:
+        assert outcomes[0][0] == "ok"
+        # a degenerate distribution is the constant delay it reduces to
+        model = LinkModel(1, 0, 1, [LinkFault(index=0, kind="delay", params=params)])
+        constant = params.get("low_ms", params.get("median_ms"))
+        delays = [model.decide(seq, 0, 0.0).delay_s for seq in range(200)]
+        assert delays == pytest.approx([constant / 1000.0] * 200, rel=1e-15)
+    else:
+        assert outcomes[0][0] == "refused" and outcomes[0][1].startswith(error)
