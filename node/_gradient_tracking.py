@@ -1,4 +1,4 @@
-"""Gradient tracking (DIGing): Nedić, Olshevsky, Shi, SIAM J. Optim. 27 (2017).
+"""Gradient tracking (DIGing): Nedić, Olshevsky, Shi, SIAM J. Optim. 27 (2017), in array form.
 
     x_i(k+1) = sum_j w_ij x_j(k) - alpha y_i(k)
     y_i(k+1) = sum_j w_ij y_j(k) + grad f_i(x_i(k+1)) - grad f_i(x_i(k)),  y_i(0) = grad f_i(x_i(0))
@@ -15,12 +15,13 @@ tracking invariant, which is a useful diagnostic.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from types import MappingProxyType
+from typing import Any
 
 import numpy as np
 
-from node._algorithm import AgentSpec, Algorithm, Payload, Received, register_algorithm
+from node._algorithm import BlockAlgorithm, Heard, Payload, register_algorithm
 from topologies._errors import ScenarioError
 
 __all__ = ["GradientTracking", "TrackingState"]
@@ -34,50 +35,46 @@ class TrackingState:
     #: grad f_i(x), kept so the next step needs one gradient evaluation
     g: np.ndarray
     priorities: None = None
+    block: Any = field(default=None, repr=False, compare=False)
 
 
 @register_algorithm
-class GradientTracking(Algorithm):
+class GradientTracking(BlockAlgorithm):
     name = "gradient-tracking"
+    state_type = TrackingState
     option_defaults = MappingProxyType({"missing": "self"})
     missing_policies = ("self", "reuse")
 
-    def __init__(self, spec: AgentSpec) -> None:
-        super().__init__(spec)
+    def configure(self) -> None:
         missing = self.option("missing")
         if missing not in self.missing_policies:
             raise ScenarioError(
-                f"agent {spec.id}: gradient-tracking 'missing' = {missing!r};"
+                f"agent {self.spec.id}: gradient-tracking 'missing' = {missing!r};"
                 " expected 'self' or 'reuse'"
             )
         self._reuse = missing == "reuse"
+        b = self.block
+        self._data = b.coefficients(b.self_weight, b.link_weight)
 
     def payload_sizes(self) -> Mapping[str, int]:
-        d = self.spec.dimension
+        d = self.block.dimension
         return {"x": d, "y": d}
 
-    def init(self) -> tuple[TrackingState, Payload]:
-        x = np.array(self.spec.initial_state, dtype=float)
-        g = self.gradient(x)
+    def start(self) -> tuple[TrackingState, Payload]:
+        x = self.initial_states()
+        g = self.gradients(x)
         return TrackingState(x=x, y=g, g=g), {"x": x, "y": g}
 
-    def step(
-        self, state: TrackingState, inbox: Mapping[int, Received], k: int
-    ) -> tuple[TrackingState, Payload]:
-        spec = self.spec
-        w_self = spec.weights[spec.id]
-        mx = w_self * state.x
-        my = w_self * state.y
-        for j in spec.in_neighbours:
-            w = spec.weights[j]
-            r = inbox.get(j)
-            if r is None or not (r.fresh or self._reuse):
-                mx = mx + w * state.x
-                my = my + w * state.y
-            else:
-                mx = mx + w * r.payload["x"]
-                my = my + w * r.payload["y"]
-        x = mx - spec.step(k) * state.y
-        g = self.gradient(x)
-        y = my + g - state.g
+    def advance(self, state: TrackingState, heard: Heard, k: int) -> tuple[TrackingState, Payload]:
+        b = self.block
+        d = b.dimension
+        use = (heard.ever if self._reuse else heard.fresh)[:, None]
+        own = np.concatenate((state.x, state.y), axis=1)
+        held = np.concatenate((heard.values["x"], heard.values["y"]), axis=1)
+        if not use.all():
+            held = np.where(use, held, own[b.link_dst])
+        mixed = b.mix(self._data, own, held)
+        x = mixed[:, :d] - self.step_rule(k) * state.y
+        g = self.gradients(x)
+        y = mixed[:, d:] + g - state.g
         return TrackingState(x=x, y=y, g=g), {"x": x, "y": y}

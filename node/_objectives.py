@@ -22,6 +22,7 @@ from node._errors import ObjectiveError
 from node._rng import agent_generator
 
 __all__ = [
+    "BlockObjective",
     "Custom",
     "Huber",
     "Logistic",
@@ -481,3 +482,95 @@ class Custom(Objective):
             )
         dim = spec.get("dimension")
         return cls(function=function, agent=agent, dimension=None if dim is None else int(dim))
+
+
+# Array form: one objective per row of a block ------------------------------------------------
+class BlockObjective:
+    """The local objectives of a block of agents, evaluated for all rows at once.
+
+    Quadratic, logistic and Huber objectives of one shape are stacked and evaluated with
+    batched matrix products; any other mix (a custom objective, data of unequal sizes)
+    falls back to one call per agent. ``grad`` and ``value`` take X of shape (B, d).
+    """
+
+    def __init__(self, objectives: list[Objective], ids: list[int]) -> None:
+        self.objectives = objectives
+        self.ids = ids
+        self.kind = "per-agent"
+        kinds = {type(o) for o in objectives}
+        if kinds == {Quadratic}:
+            self.kind = "quadratic"
+            self._t = np.array([o.target for o in objectives], dtype=float)
+            self._q = np.array([o.curvature for o in objectives], dtype=float)
+        elif kinds in ({Logistic}, {Huber}) and len({o.features.shape for o in objectives}) == 1:
+            self.kind = "logistic" if kinds == {Logistic} else "huber"
+            self._a = np.array([o.features for o in objectives], dtype=float)
+            self._at = np.ascontiguousarray(np.swapaxes(self._a, 1, 2))
+            self._m = float(self._a.shape[1])
+            self._reg = np.array([o.reg for o in objectives], dtype=float)[:, None]
+            if self.kind == "logistic":
+                self._y = np.array([o.labels for o in objectives], dtype=float)
+            else:
+                self._y = np.array([o.responses for o in objectives], dtype=float)
+                self._delta = np.array([o.delta for o in objectives], dtype=float)[:, None]
+
+    @classmethod
+    def of(cls, objectives: list[Objective], ids: list[int]) -> BlockObjective:
+        return cls(list(objectives), list(ids))
+
+    def _raised(self, b: int, exc: Exception) -> ObjectiveError:
+        if isinstance(exc, ObjectiveError):
+            return exc
+        return ObjectiveError(
+            f"agent {self.ids[b]}: objective {self.objectives[b].kind!r} raised"
+            f" {type(exc).__name__}: {exc}"
+        )
+
+    def grad(self, x: np.ndarray) -> np.ndarray:
+        """(B, d) gradients; a per-agent objective's error names its agent."""
+        if self.kind == "quadratic":
+            return np.matmul(self._q, (x - self._t)[..., None])[..., 0]
+        if self.kind == "logistic":
+            m = self._y * np.matmul(self._a, x[..., None])[..., 0]
+            coef = -self._y * _sigmoid(-m)
+            return np.matmul(self._at, coef[..., None])[..., 0] / self._m + self._reg * x
+        if self.kind == "huber":
+            r = np.matmul(self._a, x[..., None])[..., 0] - self._y
+            r = np.clip(r, -self._delta, self._delta)
+            return np.matmul(self._at, r[..., None])[..., 0] / self._m + self._reg * x
+        out = np.empty_like(x, dtype=float)
+        d = x.shape[1]
+        for b, o in enumerate(self.objectives):
+            try:
+                g = np.asarray(o.grad(x[b]), dtype=float)
+            except Exception as exc:
+                raise self._raised(b, exc) from exc
+            if g.shape != (d,):
+                raise ObjectiveError(
+                    f"agent {self.ids[b]}: objective {o.kind!r} returned a gradient of shape"
+                    f" {g.shape}; expected ({d},)"
+                )
+            out[b] = g
+        return out
+
+    def value(self, x: np.ndarray) -> np.ndarray:
+        """(B,) local values."""
+        if self.kind == "quadratic":
+            e = x - self._t
+            return 0.5 * np.einsum("bi,bi->b", np.matmul(e[:, None, :], self._q)[:, 0, :], e)
+        reg = None if self.kind == "per-agent" else 0.5 * self._reg[:, 0] * (x * x).sum(axis=1)
+        if self.kind == "logistic":
+            m = self._y * np.matmul(self._a, x[..., None])[..., 0]
+            return np.mean(np.logaddexp(0.0, -m), axis=1) + reg
+        if self.kind == "huber":
+            r = np.abs(np.matmul(self._a, x[..., None])[..., 0] - self._y)
+            d = self._delta
+            h = np.where(r <= d, 0.5 * r * r, d * (r - 0.5 * d))
+            return np.mean(h, axis=1) + reg
+        out = np.empty(len(x))
+        for b, o in enumerate(self.objectives):
+            try:
+                out[b] = float(o.value(x[b]))
+            except Exception as exc:
+                raise self._raised(b, exc) from exc
+        return out

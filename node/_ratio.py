@@ -18,8 +18,9 @@ collected by the next packet that gets through, so
 ``y_i / z_i`` tends to the exact average on a strongly connected digraph. The running sums
 grow linearly with the step count, so after k steps differences lose about log10(k) digits.
 
-The pure functions here are shared by :class:`RatioConsensus` and by the priority-weighted
-method's priority averaging.
+The array functions here are shared by :class:`RatioConsensus` and by the priority-weighted
+method's priority averaging: a block's sums are ``held`` and ``sent`` (one row per agent)
+and ``rho`` (one row per in-link).
 """
 
 from __future__ import annotations
@@ -27,66 +28,56 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
+from typing import Any
 
 import numpy as np
 
-from node._algorithm import AgentSpec, Algorithm, Payload, Received, register_algorithm
+from node._algorithm import Block, BlockAlgorithm, Heard, Payload, register_algorithm
 from topologies._errors import ScenarioError
 
 __all__ = [
     "RatioConsensus",
     "RatioState",
-    "RatioSums",
-    "fresh_sums",
     "ratio_estimate",
     "ratio_start",
     "ratio_update",
 ]
 
 
-@dataclass(frozen=True, slots=True, kw_only=True)
-class RatioSums:
-    """One agent's running-sum ratio consensus on one vector; last entry is the denominator."""
+def ratio_start(block: Block, values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Start every row from ``values`` (y(0), (B, m)) with z(0) = 1 and send the first share.
 
-    #: the share of its value the agent keeps after the last split: [y / D, z / D]
-    held: np.ndarray
-    #: sigma: running sum of the shares sent on each out-link (what the agent broadcasts)
-    sent: np.ndarray
-    #: rho: per in-neighbour, the last running sum received from it (absent = zeros)
-    received: Mapping[int, np.ndarray] = field(default_factory=dict)
-
-
-def ratio_start(value: np.ndarray, out_degree: int) -> RatioSums:
-    """Start from ``value`` (y(0)) with z(0) = 1 and send the first share."""
-    full = np.append(np.asarray(value, dtype=float), 1.0)
-    share = full / (out_degree + 1)
-    return RatioSums(held=share, sent=share.copy(), received={})
-
-
-def ratio_update(sums: RatioSums, fresh: Mapping[int, np.ndarray], out_degree: int) -> RatioSums:
-    """One step: collect what arrived (``fresh``: in-neighbour -> its sigma), then split.
-
-    Only neighbours present in ``fresh`` update their rho; a stale or lost packet adds
-    nothing now, and its mass arrives with the next packet that gets through.
+    Returns (held, sent, rho): the kept share [y / D, z / D], sigma (the running sum of the
+    shares sent on each out-link, what the agent broadcasts) and, per in-link, the last
+    sigma received from it (zeros before anything arrived).
     """
-    full = sums.held.copy()
-    received = dict(sums.received)
-    for j, sigma in fresh.items():
-        old = received.get(j)
-        full += sigma if old is None else sigma - old
-        received[j] = sigma
-    share = full / (out_degree + 1)
-    return RatioSums(held=share, sent=sums.sent + share, received=received)
+    full = np.concatenate((np.asarray(values, dtype=float), np.ones((block.size, 1))), axis=1)
+    share = full / (block.out_degree + 1)[:, None]
+    return share, share.copy(), np.zeros((block.links, full.shape[1]))
 
 
-def ratio_estimate(sums: RatioSums) -> np.ndarray:
-    """The agent's estimate of the average: y / z."""
-    return sums.held[:-1] / sums.held[-1]
+def ratio_update(
+    block: Block,
+    held: np.ndarray,
+    sent: np.ndarray,
+    rho: np.ndarray,
+    sigma: np.ndarray,
+    fresh: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """One step: collect what arrived (``sigma`` on links marked ``fresh``), then split.
+
+    Only fresh links update their rho; a stale or lost packet adds nothing now, and its
+    mass arrives with the next packet that gets through.
+    """
+    full = block.mix(block.coefficients(1.0, fresh.astype(float)), held, sigma - rho)
+    rho = np.where(fresh[:, None], sigma, rho)
+    share = full / (block.out_degree + 1)[:, None]
+    return share, sent + share, rho
 
 
-def fresh_sums(inbox: Mapping[int, Received], key: str) -> dict[int, np.ndarray]:
-    """The running sums under ``key`` of every message that arrived since the last step."""
-    return {j: np.asarray(r.payload[key], dtype=float) for j, r in inbox.items() if r.fresh}
+def ratio_estimate(held: np.ndarray) -> np.ndarray:
+    """Every row's estimate of the average: y / z."""
+    return held[:, :-1] / held[:, -1:]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -95,64 +86,89 @@ class RatioState:
     x: np.ndarray
     #: its estimate of the average priority vector (when averaged), else its initial vector
     priorities: np.ndarray | None
-    sums: RatioSums
-    priority_sums: RatioSums | None = None
+    held: np.ndarray
+    sent: np.ndarray
+    #: per in-link: the last running sum received on it
+    rho: np.ndarray
+    p_held: np.ndarray | None = None
+    p_sent: np.ndarray | None = None
+    p_rho: np.ndarray | None = None
+    block: Any = field(default=None, repr=False, compare=False)
 
 
 @register_algorithm
-class RatioConsensus(Algorithm):
+class RatioConsensus(BlockAlgorithm):
     """Average the initial states (and, with ``params["average_priorities"] = True``, the
     priority vectors) by running-sum ratio consensus; exact under packet drops."""
 
     name = "ratio-consensus"
     directed_ok = True
+    state_type = RatioState
+    per_link = frozenset({"rho", "p_rho"})
     option_defaults = MappingProxyType({"average_priorities": False})
 
-    def __init__(self, spec: AgentSpec) -> None:
-        super().__init__(spec)
+    def configure(self) -> None:
         average = self.option("average_priorities")
         if not isinstance(average, bool):
             raise ScenarioError(
-                f"agent {spec.id}: ratio-consensus 'average_priorities' = {average!r};"
+                f"agent {self.spec.id}: ratio-consensus 'average_priorities' = {average!r};"
                 " expected true or false"
             )
-        self._average_priorities = average and spec.initial_priorities is not None
-        self._out_degree = len(spec.out_neighbours)
+        self._average_priorities = average and self.spec.initial_priorities is not None
 
     def payload_sizes(self) -> Mapping[str, int]:
-        sizes = {"sigma": self.spec.dimension + 1}
+        sizes = {"sigma": self.block.dimension + 1}
         if self._average_priorities:
-            sizes["w_sigma"] = self.spec.n_agents + 1
+            sizes["w_sigma"] = self.block.n_agents + 1
         return sizes
 
-    def _payload(self, sums: RatioSums, priority_sums: RatioSums | None) -> Payload:
-        out = {"sigma": sums.sent}
-        if priority_sums is not None:
-            out["w_sigma"] = priority_sums.sent
+    def _payload(self, state: RatioState) -> Payload:
+        out = {"sigma": state.sent}
+        if state.p_sent is not None:
+            out["w_sigma"] = state.p_sent
         return out
 
-    def init(self) -> tuple[RatioState, Payload]:
-        spec = self.spec
-        x0 = np.array(spec.initial_state, dtype=float)
-        sums = ratio_start(x0, self._out_degree)
-        psums = None
-        priorities = spec.initial_priorities
+    def start(self) -> tuple[RatioState, Payload]:
+        b = self.block
+        x0 = self.initial_states()
+        held, sent, rho = ratio_start(b, x0)
+        priorities = p_held = p_sent = p_rho = None
+        if b.specs[0].initial_priorities is not None:
+            priorities = np.array([sp.initial_priorities for sp in b.specs], dtype=float)
         if self._average_priorities:
-            psums = ratio_start(np.asarray(priorities, dtype=float), self._out_degree)
-            priorities = ratio_estimate(psums)
-        state = RatioState(x=x0, priorities=priorities, sums=sums, priority_sums=psums)
-        return state, self._payload(sums, psums)
-
-    def step(
-        self, state: RatioState, inbox: Mapping[int, Received], k: int
-    ) -> tuple[RatioState, Payload]:
-        sums = ratio_update(state.sums, fresh_sums(inbox, "sigma"), self._out_degree)
-        psums = state.priority_sums
-        priorities = state.priorities
-        if psums is not None:
-            psums = ratio_update(psums, fresh_sums(inbox, "w_sigma"), self._out_degree)
-            priorities = ratio_estimate(psums)
-        new = RatioState(
-            x=ratio_estimate(sums), priorities=priorities, sums=sums, priority_sums=psums
+            p_held, p_sent, p_rho = ratio_start(b, priorities)
+            priorities = ratio_estimate(p_held)
+        state = RatioState(
+            x=x0,
+            priorities=priorities,
+            held=held,
+            sent=sent,
+            rho=rho,
+            p_held=p_held,
+            p_sent=p_sent,
+            p_rho=p_rho,
         )
-        return new, self._payload(sums, psums)
+        return state, self._payload(state)
+
+    def advance(self, state: RatioState, heard: Heard, k: int) -> tuple[RatioState, Payload]:
+        b = self.block
+        held, sent, rho = ratio_update(
+            b, state.held, state.sent, state.rho, heard.values["sigma"], heard.fresh
+        )
+        priorities, p_held, p_sent, p_rho = state.priorities, None, None, None
+        if state.p_held is not None:
+            p_held, p_sent, p_rho = ratio_update(
+                b, state.p_held, state.p_sent, state.p_rho, heard.values["w_sigma"], heard.fresh
+            )
+            priorities = ratio_estimate(p_held)
+        new = RatioState(
+            x=ratio_estimate(held),
+            priorities=priorities,
+            held=held,
+            sent=sent,
+            rho=rho,
+            p_held=p_held,
+            p_sent=p_sent,
+            p_rho=p_rho,
+        )
+        return new, self._payload(new)

@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
-import dataclasses
 import os
 import signal
 import socket
@@ -439,7 +438,7 @@ class Node:
         start_state = self.plan.get("start_state")
         if start_state is not None:  # a restart that keeps its last reported state
             x = np.asarray(start_state, dtype=float)
-            state = dataclasses.replace(state, x=x)
+            state = self.algorithm.restart_from(state, x)
             if "x" in out:
                 out = {**out, "x": x}
         return state, out

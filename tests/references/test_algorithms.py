@@ -290,11 +290,11 @@ def test_push_sum_is_biased_by_drops_and_ratio_consensus_is_not() -> None:
 
 def _mass(states: list, in_neighbours: list[tuple[int, ...]]) -> np.ndarray:
     """sum_i held_i + sum_(j->i) (sigma_j - rho_ji): the invariant of methods.md [derived]."""
-    total = np.sum([s.sums.held for s in states], axis=0)
+    total = np.sum([s.held for s in states], axis=0)
     for i, ins in enumerate(in_neighbours):
-        for j in ins:
-            rho = states[i].sums.received.get(j, 0.0)
-            total = total + states[j].sums.sent - rho
+        for link, j in enumerate(ins):  # rho: one row per in-link, in in-neighbour order
+            rho = states[i].rho[link]
+            total = total + states[j].sent - rho
     return total
 
 

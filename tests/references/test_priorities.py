@@ -159,11 +159,11 @@ def test_ratio_priority_mass_invariant(loss: float) -> None:
     worst = [0.0]
 
     def check(k: int, states: list) -> None:
-        total = np.sum([s.priority_sums.held for s in states], axis=0)
+        total = np.sum([s.p_held for s in states], axis=0)
         for i, neighbours in enumerate(ins):
-            for j in neighbours:
-                rho = states[i].priority_sums.received.get(j, 0.0)
-                total = total + states[j].priority_sums.sent - rho
+            for link, j in enumerate(neighbours):  # p_rho: one row per in-link, in order
+                rho = states[i].p_rho[link]
+                total = total + states[j].p_sent - rho
         worst[0] = max(worst[0], float(np.max(np.abs(total - expected))))
 
     deliver = bernoulli_loss(21, loss) if loss else None
