@@ -6,6 +6,7 @@ for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     _os.environ.setdefault(_v, "1")
 
 from coordinator._api import check, load, run  # noqa: E402
+from coordinator._batch import check_batch, run_batch  # noqa: E402
 from coordinator._reference import Reference, reference_optimum, total_objective  # noqa: E402
 from coordinator._run import RunOptions, RunResult  # noqa: E402
 from coordinator._scenario import (  # noqa: E402
@@ -27,6 +28,7 @@ __all__ = [
     "Swarm",
     "build_swarm",
     "check",
+    "check_batch",
     "check_topology_params",
     "describe_keys",
     "links_in_scope",
@@ -34,5 +36,6 @@ __all__ = [
     "load_scenario",
     "reference_optimum",
     "run",
+    "run_batch",
     "total_objective",
 ]

@@ -76,7 +76,8 @@ class RunOptions:
     handshake_timeout: float | None = None
     #: label written to run.json and summary.json (e.g. "baseline")
     label: str | None = None
-    #: "processes" (one OS process per agent) or "lockstep" (rounds mode in this process)
+    #: "processes" (one OS process per agent), "lockstep" (rounds mode in this process) or
+    #: "batch" (rounds mode as arrays, coordinator._batch)
     engine: str = "processes"
 
 
@@ -894,6 +895,12 @@ def execute(swarm: Swarm, options: RunOptions | None = None) -> RunResult:
         from coordinator._lockstep import execute_lockstep
 
         return execute_lockstep(swarm, options)
+    if options.engine == "batch":
+        from coordinator._batch import execute_batch
+
+        return execute_batch(swarm, options)
     if options.engine != "processes":
-        raise RunFailed(f"engine {options.engine!r} is not known; expected processes or lockstep")
+        raise RunFailed(
+            f"engine {options.engine!r} is not known; expected processes, lockstep or batch"
+        )
     return Coordinator(swarm, options).execute()

@@ -40,10 +40,11 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--list-demos", action="store_true", help="list the built-in demos and exit")
     r.add_argument(
         "--engine",
-        choices=("processes", "lockstep"),
+        choices=("processes", "lockstep", "batch"),
         default="processes",
         help="processes: one OS process per agent (default); lockstep: rounds mode "
-        "in this process with the same agent code, for fast studies",
+        "in this process with the same agent code; batch: rounds mode with the whole "
+        "swarm as arrays, for fast studies",
     )
     r.add_argument(
         "--listen",
@@ -98,8 +99,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
         for name, text in list_demos():
             print(f"{name:20s} {text}")
         return 0
-    if args.engine == "lockstep" and (args.listen or args.no_launch):
-        _err("--engine lockstep runs every agent in this process: no --listen, no --no-launch")
+    if args.engine in ("lockstep", "batch") and (args.listen or args.no_launch):
+        _err(
+            f"--engine {args.engine} runs every agent in this process: no --listen, no --no-launch"
+        )
         return EXIT_SCENARIO
     target = args.scenario or DEFAULT_DEMO
     try:
@@ -110,11 +113,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
     except FileNotFoundError as exc:
         _err(f"{target}: no such scenario file or demo ({exc.strerror})")
         return EXIT_SCENARIO
-    if args.engine == "lockstep":
+    if args.engine in ("lockstep", "batch"):
+        from coordinator._batch import check_batch
         from coordinator._lockstep import check_lockstep
 
         try:
-            check_lockstep(swarm)
+            (check_lockstep if args.engine == "lockstep" else check_batch)(swarm)
         except ScenarioError as exc:
             _err(str(exc))
             return EXIT_SCENARIO
