@@ -158,7 +158,7 @@ def effective_priorities(a: np.ndarray) -> np.ndarray:
 def priority_report(
     initial_priorities: np.ndarray,
     final_priorities: np.ndarray,
-    final_rows: Mapping[int, Mapping[int, float]],
+    final_rows: Mapping[int, Mapping[int, float]] | None,
     objectives: Sequence[Objective],
     x_hat: np.ndarray,
 ) -> dict[str, Any]:
@@ -182,22 +182,29 @@ def priority_report(
     x_hat = np.asarray(x_hat, dtype=float)
     intended = w0.mean(axis=0)
     agreed = wf.mean(axis=0)
-    inf = influence(mixing_matrix(final_rows, n))
     ref_intended = reference_optimum(objectives, intended)
-    ref_effective = reference_optimum(objectives, inf.priorities)
-    return {
+    report: dict[str, Any] = {
         "intended_priorities": intended.tolist(),
         "agreed_priorities": {
             "mean": agreed.tolist(),
             "max_disagreement": float(np.max(np.abs(wf - agreed))),
         },
-        "effective_priorities": inf.priorities.tolist(),
-        "effective_note": inf.note,
-        "closed_classes": [list(c) for c in inf.closed_classes],
         "gap_to_intended": total_objective(objectives, intended, x_hat) - ref_intended.F_star,
-        "gap_to_effective": total_objective(objectives, inf.priorities, x_hat)
-        - ref_effective.F_star,
         "x_star_intended": ref_intended.x_star.tolist(),
-        "x_star_effective": ref_effective.x_star.tolist(),
-        "intended_vs_effective_l1": float(np.abs(intended - inf.priorities).sum()),
     }
+    if final_rows is None:  # a method that mixes no states (ratio consensus): no effective row
+        return report
+    inf = influence(mixing_matrix(final_rows, n))
+    ref_effective = reference_optimum(objectives, inf.priorities)
+    report.update(
+        {
+            "effective_priorities": inf.priorities.tolist(),
+            "effective_note": inf.note,
+            "closed_classes": [list(c) for c in inf.closed_classes],
+            "gap_to_effective": total_objective(objectives, inf.priorities, x_hat)
+            - ref_effective.F_star,
+            "x_star_effective": ref_effective.x_star.tolist(),
+            "intended_vs_effective_l1": float(np.abs(intended - inf.priorities).sum()),
+        }
+    )
+    return report
