@@ -52,10 +52,16 @@ class ForkServer:
             {"op": "spawn", "agent": agent, "join": join, "log": log, "heartbeat": heartbeat}
         )
 
-    def kill(self, pid: int, sig: int = signal.SIGKILL) -> None:
+    def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> None:
         # Signal directly: the coordinator owns the timing of process faults.
         with contextlib.suppress(ProcessLookupError, PermissionError):
             os.kill(pid, sig)
+
+    def lost(self) -> str | None:
+        """Why the run cannot go on, if the server died (its agents died with it)."""
+        if self.proc.poll() is None:
+            return None
+        return f"the fork server died (exit status {self.proc.returncode}); its agents died with it"
 
     def _send(self, obj: dict[str, Any]) -> None:
         assert self.proc.stdin is not None

@@ -79,6 +79,8 @@ class RunOptions:
     #: "processes" (one OS process per agent), "lockstep" (rounds mode in this process) or
     #: "batch" (rounds mode as arrays, coordinator._batch)
     engine: str = "processes"
+    #: a coordinator._inventory.Inventory: start the agents on its hosts over ssh
+    inventory: Any = None
 
 
 @dataclass(slots=True)
@@ -199,7 +201,8 @@ class Coordinator:
         self.router.setsockopt(zmq.MAXMSGSIZE, 4 * MAX_CONTROL_FRAME)
         self.router.setsockopt(zmq.SNDHWM, 100000)
         self.router.setsockopt(zmq.RCVHWM, 0)
-        listen = self.opt.listen or "tcp://127.0.0.1:*"
+        inventory = self.opt.inventory
+        listen = self.opt.listen or (inventory.listen if inventory else "tcp://127.0.0.1:*")
         self.router.bind(listen)
         self.endpoint = self.router.getsockopt(zmq.LAST_ENDPOINT).decode()
         if self.endpoint.startswith("tcp://0.0.0.0:"):
@@ -221,11 +224,25 @@ class Coordinator:
         if (
             self.opt.launch_local
             and self.opt.listen is None
+            and inventory is None
             and self.s.network["transport"] == "ipc"
         ):
             self.ipc_dir = tempfile.mkdtemp(prefix="swarmrig-")
             self.swarm = with_transport(self.swarm, "ipc", self.ipc_dir)
-        if self.opt.launch_local:
+        if inventory is not None:
+            from coordinator._remote import RemoteLauncher, RemoteStartError
+
+            try:
+                # A host's server outlives its agents' own heartbeat rule by a second, so
+                # agents leave by themselves and the server only clears what is left.
+                idle = self.opt.heartbeat_timeout + 1.0
+                self.fork = RemoteLauncher(inventory, idle, version=VERSION)
+            except RemoteStartError as exc:
+                raise _Stop(str(exc), 3) from None
+            self.write_run_json(hosts=self.fork.hosts_json())
+            for a in self.agents:
+                self.spawn(a)
+        elif self.opt.launch_local:
             self.fork = ForkServer()
             self.write_run_json(process_group=self.fork.pgid)
             for a in self.agents:
@@ -239,12 +256,9 @@ class Coordinator:
     def on_fork_events(self) -> None:
         if self.fork is None:
             return
-        if self.fork.proc.poll() is not None and not self.stop_requested:
-            # the fork server (and with it, through PR_SET_PDEATHSIG, every agent) is gone
-            self.unexpected.append(
-                f"the fork server died (exit status {self.fork.proc.returncode}); "
-                "its agents died with it"
-            )
+        lost = self.fork.lost()
+        if lost is not None and not self.stop_requested and lost not in self.unexpected:
+            self.unexpected.append(lost)
         for ev in self.fork.events():
             if ev["op"] == "spawned":
                 a = self.agents[int(ev["agent"])]
@@ -610,8 +624,7 @@ class Coordinator:
         a.crashed_on_purpose = True
         a.restart_state = pf["params"].get("restart_state", "initial")
         pid = a.pid
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(pid, signal.SIGKILL)
+        self.signal_agent(a, signal.SIGKILL)
         a.record.alive = False
         self.event("crash", fault=pf["index"], agent=i, epoch=a.epoch, pid=pid, signal="SIGKILL")
         after = pf["params"].get("restart_after_s")
@@ -632,8 +645,7 @@ class Coordinator:
         a = self.agents[i]
         if a.pid is None or a.dead:
             return
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(a.pid, signal.SIGSTOP if stop else signal.SIGCONT)
+        self.signal_agent(a, signal.SIGSTOP if stop else signal.SIGCONT)
         self.event(
             "pause" if stop else "resume",
             fault=pf["index"],
@@ -641,6 +653,16 @@ class Coordinator:
             pid=a.pid,
             signal="SIGSTOP" if stop else "SIGCONT",
         )
+
+    def signal_agent(self, a: _Agent, sig: int) -> None:
+        """Signal an agent through whoever started it (a remote host's server for remote
+        agents); agents started by hand are signalled by their pid."""
+        assert a.pid is not None
+        if self.fork is not None:
+            self.fork.kill(a.pid, sig, agent=a.id)
+            return
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(a.pid, sig)
 
     def slow(self, i: int, pf: dict[str, Any], factor: float) -> None:
         a = self.agents[i]

@@ -57,6 +57,12 @@ def _parser() -> argparse.ArgumentParser:
         help="start no agents here: wait for `swarmrig node` on other machines",
     )
     r.add_argument(
+        "--inventory",
+        type=Path,
+        metavar="HOSTS.toml",
+        help="start the agents on the machines of this inventory over ssh (deploy/README.md)",
+    )
+    r.add_argument(
         "--heartbeat-timeout",
         type=float,
         default=3.0,
@@ -113,6 +119,19 @@ def _cmd_run(args: argparse.Namespace) -> int:
     except FileNotFoundError as exc:
         _err(f"{target}: no such scenario file or demo ({exc.strerror})")
         return EXIT_SCENARIO
+    inventory = None
+    if args.inventory is not None:
+        from coordinator._inventory import load_inventory
+
+        if args.no_launch or args.engine != "processes":
+            _err("--inventory starts the agents on its hosts: no --no-launch, no --engine")
+            return EXIT_SCENARIO
+        try:
+            inventory = load_inventory(args.inventory)
+            inventory.check_swarm(swarm.n, swarm.scenario.name, swarm.scenario.network)
+        except ScenarioError as exc:
+            _err(str(exc))
+            return EXIT_SCENARIO
     if args.engine in ("lockstep", "batch"):
         from coordinator._batch import check_batch
         from coordinator._lockstep import check_lockstep
@@ -135,6 +154,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
             engine=args.engine,
             listen=args.listen,
             heartbeat_timeout=args.heartbeat_timeout,
+            inventory=inventory,
         )
     finally:
         if view is not None:

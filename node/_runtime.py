@@ -634,6 +634,11 @@ class Node:
                 self._wait_stop(2.0)
                 return 4
             if reason == "coordinator lost" or self.coordinator_lost():
+                print(
+                    f"agent {self.agent}: coordinator silent for {self.heartbeat_timeout:.1f} s;"
+                    " exiting",
+                    file=sys.stderr,
+                )
                 return 3
             self.finish(state, reason)
             if self.life.phase is Phase.RUNNING:
