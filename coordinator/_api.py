@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from coordinator._demos import demo_path
+from coordinator._endpoints import check_endpoint
 from coordinator._run import RunOptions, RunResult, execute
 from coordinator._scenario import Scenario, is_file, load_scenario
 from coordinator._swarm import Swarm, build_swarm
@@ -53,6 +54,9 @@ def run(
     ``baseline=True`` also runs the same scenario without its faults (in ``<out>/baseline``)
     and puts its figures beside the faulty run's under ``summary["baseline"]``.
     """
+    if options.get("listen") is not None:
+        # refused before the run directory is written (ZeroMQ would say "Invalid argument")
+        check_endpoint(options["listen"], option="listen", bind=True)
     swarm = scenario if isinstance(scenario, Swarm) else load(scenario)
     opts = RunOptions(
         out=None if out is None else Path(out), runs_root=Path(runs_root), view=view, **options
@@ -66,10 +70,14 @@ def run(
 
 
 def check(scenario: str | Path | Mapping[str, Any] | Scenario) -> dict[str, Any]:
-    """The resolved scenario, the graph facts and the reference optimum; starts nothing."""
+    """The resolved scenario, the graph facts, the reference optimum and the algorithm's
+    options as every agent will use them (its own defaults filled); starts nothing."""
     import topologies as topo
+    from node import algorithm_class
 
     swarm = load(scenario)
+    cls = algorithm_class(swarm.algorithm["name"])
+    options = {**cls.option_defaults, **swarm.algorithm["params"]}
     facts = topo.graph_facts(swarm.topology).as_dict()
     ref = swarm.reference
     return {
@@ -83,4 +91,9 @@ def check(scenario: str | Path | Mapping[str, Any] | Scenario) -> dict[str, Any]
             "tolerance": ref.tolerance,
         },
         "intended_priorities": swarm.intended.tolist(),
+        "algorithm": {
+            "name": swarm.algorithm["name"],
+            "step": swarm.algorithm["step"],
+            "options": dict(sorted(options.items())),
+        },
     }

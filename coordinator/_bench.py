@@ -13,6 +13,7 @@ import os
 import shutil
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -183,19 +184,39 @@ def _median(values: list[float]) -> float:
     return float(np.median(values))
 
 
-def bench(quick: bool = False, repeats: int = 3) -> dict[str, Any]:
+def bench(
+    quick: bool = False, repeats: int = 3, progress: Callable[[int, int, str], None] | None = None
+) -> dict[str, Any]:
     """Every figure of ``swarmrig bench`` (``quick``: smaller sizes, for a smoke test).
 
     Each figure is the median of ``repeats`` measurements, all of which are reported too:
     on a small shared machine one measurement alone can be off by a factor of two. The raw
     and the node message paths are measured alternately, so that both see the same machine.
+    ``progress(done, total, what)`` is called before each measurement.
     """
     sizes = (8, 16) if quick else (32, 64, 128)
     rounds = 300 if quick else 4000
     count = 50_000 if quick else 1_000_000
     reps = 1 if quick else repeats
-    spawn_all = {n: [spawn_time(n) for _ in range(reps)] for n in sizes}
-    rates_all = {n: [rounds_rate(n, rounds) for _ in range(reps)] for n in (8, 32)}
+    total = reps * (len(sizes) + 2 + 3)
+    done = 0
+
+    def step(what: str) -> None:
+        nonlocal done
+        if progress is not None:
+            progress(done, total, what)
+        done += 1
+
+    spawn_all: dict[int, list[float]] = {n: [] for n in sizes}
+    for n in sizes:
+        for _ in range(reps):
+            step(f"spawn time, {n} agents")
+            spawn_all[n].append(spawn_time(n))
+    rates_all: dict[int, list[float]] = {n: [] for n in (8, 32)}
+    for n in (8, 32):
+        for _ in range(reps):
+            step(f"rounds rate, ring of {n}, {rounds} rounds")
+            rates_all[n].append(rounds_rate(n, rounds))
     loss = {
         "index": 0,
         "kind": "loss",
@@ -208,11 +229,16 @@ def bench(quick: bool = False, repeats: int = 3) -> dict[str, Any]:
     raw_all, node_all, fault_all = [], [], []
     node = faulty = None
     for _ in range(reps):
+        step(f"raw pyzmq, {count} messages")
         raw_all.append(message_path(count, node_path=False)["msgs_per_s"])
+        step(f"node message path, {count} messages")
         node = message_path(count, node_path=True)
         node_all.append(node["msgs_per_s"])
+        step(f"node message path with a loss fault, {count} messages")
         faulty = message_path(count, node_path=True, fault=loss)
         fault_all.append(faulty["msgs_per_s"])
+    if progress is not None:
+        progress(total, total, "done")
     assert node is not None and faulty is not None
     raw_m, node_m, fault_m = _median(raw_all), _median(node_all), _median(fault_all)
     return {

@@ -80,7 +80,7 @@ def check_lockstep(swarm: Swarm) -> None:
     for f in s.faults:
         if f["kind"] in PROCESS_FAULTS:
             raise ScenarioError(
-                f"{s.source}: fault[{f['index']}].kind: {f['kind']!r} is a process fault, which"
+                f"{s.source}: [[fault]] #{f['index']}: kind: {f['kind']!r} is a process fault, which"
                 f" the lockstep engine cannot model; expected a link fault"
                 f' ({", ".join(sorted(LINK_FAULTS))}) or the "processes" engine'
             )

@@ -73,7 +73,11 @@ class RunOptions:
     #: fork the agents here; False waits for agents started by hand (other machines)
     launch_local: bool = True
     heartbeat_timeout: float = 3.0
+    #: seconds to wait until every agent is ready; None: 20 s + 0.1 s per agent
     handshake_timeout: float | None = None
+    #: None, or called during the handshake as on_join(endpoint, joined, expected) (the
+    #: command line shows "joined k of n" with it while agents started by hand come in)
+    on_join: Any = None
     #: label written to run.json and summary.json (e.g. "baseline")
     label: str | None = None
     #: "processes" (one OS process per agent), "lockstep" (rounds mode in this process) or
@@ -438,6 +442,10 @@ class Coordinator:
         peers_sent = False
         while True:
             self.pump(5)
+            if self.opt.on_join is not None:
+                self.opt.on_join(
+                    self.endpoint, sum(a.ident is not None for a in self.agents), self.n
+                )
             self.check_stop_request(before_go=True)
             if self.unexpected:
                 raise _Stop(self.unexpected[0] + " during start-up", 3)

@@ -295,7 +295,8 @@ class Scenario:
         """
         origin = self.source.replace("\n", " ")
         header = (
-            f"# swarmrig resolved scenario (from {origin}): every default filled, seed explicit.\n"
+            f"# swarmrig resolved scenario (from {origin}): every default filled, seed explicit"
+            " (the algorithm's own option defaults: swarmrig check).\n"
         )
         return header + _dump_toml(self.to_dict())
 

@@ -201,11 +201,11 @@ def _faults(s: Scenario, top: topo.Topology) -> tuple[dict, list, list]:
     timed: list[dict[str, Any]] = []
     process: list[dict[str, Any]] = []
     for f in s.faults:
-        where = f"{s.source}: fault[{f['index']}]"
+        where = f"{s.source}: [[fault]] #{f['index']}"
         if f["kind"] in PROCESS_FAULTS:
             process.append(f)
             continue
-        links = links_in_scope(f["scope"], top, where=f"{where}.links")
+        links = links_in_scope(f["scope"], top, where=f"{where}: links")
         start_s = f.get("start_s")
         start_it = f.get("start_iteration")
         end_s = None if f.get("duration_s") is None else (start_s or 0.0) + f["duration_s"]

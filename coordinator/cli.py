@@ -1,9 +1,16 @@
-"""The ``swarmrig`` command."""
+"""The ``swarmrig`` command.
+
+One ``_add_<command>`` function declares each subcommand and its options (every option has
+help text), one ``_cmd_<command>`` function runs it; :func:`main` maps one to the other and
+handles what every command shares (a closed output pipe, the exit statuses).
+"""
 
 from __future__ import annotations
 
 import argparse
 import json
+import math
+import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -11,27 +18,76 @@ from typing import Any
 __all__ = ["main"]
 
 EXIT_SCENARIO = 2
+#: 128 + SIGPIPE, what a shell reports for a command whose reader went away
+EXIT_BROKEN_PIPE = 141
 
 
-def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(
-        prog="swarmrig",
-        description="Run distributed optimization swarms as real processes and measure how "
-        "network and process faults hurt them.",
+# --------------------------------------------------------------------------- arguments
+
+
+def _seconds(text: str) -> float:
+    """A positive, finite number of seconds (argparse type)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected a number of seconds > 0, got {text!r}"
+        ) from None
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(f"expected a number of seconds > 0, got {text!r}")
+    return value
+
+
+def _agent_id(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected an agent id (0, 1, ...), got {text!r}"
+        ) from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected an agent id (0, 1, ...), got {text!r}")
+    return value
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("swarmrig")
+    except PackageNotFoundError:  # running from a source tree that was never installed
+        return "unknown (not installed)"
+
+
+def _heartbeat_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--heartbeat-timeout",
+        type=_seconds,
+        default=3.0,
+        metavar="S",
+        help="seconds without a word from the coordinator before an agent exits by itself"
+        " (default 3)",
     )
-    sub = p.add_subparsers(dest="command", required=True)
 
+
+def _add_run(sub: Any) -> None:
     r = sub.add_parser("run", help="run a scenario (or a built-in demo) and write a run directory")
     r.add_argument("scenario", nargs="?", help="scenario TOML file or demo name (default: demo)")
-    r.add_argument("--out", type=Path, help="the run directory itself (default runs/<name>-<UTC>)")
+    r.add_argument(
+        "--out",
+        type=Path,
+        metavar="DIR",
+        help="the run directory itself (default runs/<name>-<UTC>)",
+    )
     r.add_argument(
         "--runs-root",
         type=Path,
         default=Path("runs"),
+        metavar="DIR",
         help="where default run directories go (default ./runs)",
     )
     r.add_argument("--quiet", action="store_true", help="no live view, no summary table")
-    r.add_argument("--json", action="store_true", help="print summary.json on stdout")
+    r.add_argument("--json", action="store_true", help="print summary.json on standard output")
     r.add_argument(
         "--baseline",
         action="store_true",
@@ -49,12 +105,13 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument(
         "--listen",
         metavar="ENDPOINT",
-        help="control endpoint to bind, e.g. tcp://0.0.0.0:5570 (agents on other machines join it)",
+        help="control endpoint to bind, tcp://HOST:PORT, e.g. tcp://0.0.0.0:5570 (agents on"
+        " other machines join it)",
     )
     r.add_argument(
         "--no-launch",
         action="store_true",
-        help="start no agents here: wait for `swarmrig node` on other machines",
+        help="start no agents here: wait for `swarmrig node` on other machines (needs --listen)",
     )
     r.add_argument(
         "--inventory",
@@ -63,34 +120,136 @@ def _parser() -> argparse.ArgumentParser:
         help="start the agents on the machines of this inventory over ssh (deploy/README.md)",
     )
     r.add_argument(
-        "--heartbeat-timeout",
-        type=float,
-        default=3.0,
-        help="seconds without the coordinator before an agent exits (default 3)",
+        "--join-timeout",
+        type=_seconds,
+        metavar="S",
+        help="seconds to wait until every agent has joined and is ready"
+        " (default 20 + 0.1 per agent)",
+    )
+    _heartbeat_option(r)
+
+
+def _add_check(sub: Any) -> None:
+    c = sub.add_parser("check", help="validate a scenario, print it resolved; start nothing")
+    c.add_argument("scenario", help="scenario TOML file or demo name")
+    c.add_argument(
+        "--json",
+        action="store_true",
+        help="print the resolved scenario, graph facts, reference optimum and algorithm"
+        " options as JSON",
     )
 
-    c = sub.add_parser("check", help="validate a scenario, print it resolved; start nothing")
-    c.add_argument("scenario")
-    c.add_argument("--json", action="store_true")
 
+def _add_node(sub: Any) -> None:
     n = sub.add_parser("node", help="run one agent that joins a coordinator")
     n.add_argument(
         "--join",
         required=True,
         metavar="ENDPOINT",
-        help="the coordinator's control endpoint, e.g. tcp://10.0.0.5:5570",
+        help="the coordinator's control endpoint, tcp://HOST:PORT, e.g. tcp://lab-pc:5570",
     )
-    n.add_argument("--agent", required=True, type=int, metavar="ID")
-    n.add_argument("--heartbeat-timeout", type=float, default=3.0)
+    n.add_argument(
+        "--agent",
+        required=True,
+        type=_agent_id,
+        metavar="ID",
+        help="which agent of the scenario this process is (0 to agents - 1)",
+    )
+    _heartbeat_option(n)
 
+
+def _add_bench(sub: Any) -> None:
     b = sub.add_parser("bench", help="measure what this machine can hold")
-    b.add_argument("--json", action="store_true")
-    b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke test")
+    b.add_argument("--json", action="store_true", help="print the figures as JSON")
+    b.add_argument(
+        "--quick",
+        action="store_true",
+        help="smaller sizes and one measurement each: a smoke test of a minute or so",
+    )
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="swarmrig",
+        description="Run distributed optimization swarms as real processes and measure how "
+        "network and process faults hurt them.",
+    )
+    p.add_argument("--version", action="version", version=f"swarmrig {_version()}")
+    sub = p.add_subparsers(dest="command", required=True)
+    _add_run(sub)
+    _add_check(sub)
+    _add_node(sub)
+    _add_bench(sub)
     return p
+
+
+# --------------------------------------------------------------------------- helpers
 
 
 def _err(msg: str) -> None:
     print(f"swarmrig: error: {msg}", file=sys.stderr)
+
+
+def _demo_hint(target: str) -> str:
+    """' (did you mean the demo "x"?)' when ``target`` is no file but close to a demo name."""
+    from coordinator._demos import closest_demo
+    from coordinator._scenario import is_file
+
+    if is_file(Path(target)) or os.sep in target:
+        return ""
+    close = closest_demo(Path(target).stem if target.endswith(".toml") else target)
+    return f' (did you mean the demo "{close}"?)' if close else ""
+
+
+def _load_or_explain(target: str, call: Any) -> Any:
+    """``call(target)``; a refused scenario prints its message (with a demo hint) and
+    returns None."""
+    from topologies._errors import ScenarioError
+
+    try:
+        return call(target)
+    except ScenarioError as exc:
+        _err(str(exc) + _demo_hint(target))
+        return None
+
+
+def _endpoint(text: str, option: str, *, bind: bool) -> bool:
+    from coordinator._endpoints import EndpointError, check_endpoint
+
+    try:
+        check_endpoint(text, option=option, bind=bind)
+    except EndpointError as exc:
+        _err(str(exc))
+        return False
+    return True
+
+
+class _JoinProgress:
+    """'joined k of n' on standard error while agents started by hand come in."""
+
+    def __init__(self) -> None:
+        self.shown: tuple[int, int] | None = None
+        self.tty = sys.stderr.isatty()
+
+    def __call__(self, endpoint: str, joined: int, expected: int) -> None:
+        if self.shown is None:
+            print(
+                f"swarmrig: waiting for {expected} agents at {endpoint}; start each with\n"
+                f"  swarmrig node --join {endpoint} --agent ID",
+                file=sys.stderr,
+            )
+        if self.shown == (joined, expected):
+            return
+        self.shown = (joined, expected)
+        line = f"joined {joined} of {expected}"
+        if self.tty:
+            end = "\n" if joined == expected else ""
+            print(f"\r{line}", end=end, file=sys.stderr, flush=True)
+        else:
+            print(line, file=sys.stderr, flush=True)
+
+
+# --------------------------------------------------------------------------- commands
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
@@ -110,14 +269,18 @@ def _cmd_run(args: argparse.Namespace) -> int:
             f"--engine {args.engine} runs every agent in this process: no --listen, no --no-launch"
         )
         return EXIT_SCENARIO
-    target = args.scenario or DEFAULT_DEMO
-    try:
-        swarm = load(target)
-    except ScenarioError as exc:
-        _err(str(exc))
+    if args.no_launch and not args.listen:
+        _err(
+            "--no-launch waits for agents started on other machines; give them an endpoint"
+            " to join with --listen tcp://0.0.0.0:PORT"
+        )
         return EXIT_SCENARIO
-    except FileNotFoundError as exc:
-        _err(f"{target}: no such scenario file or demo ({exc.strerror})")
+    # checked before the run directory is written: ZeroMQ would only say "Invalid argument"
+    if args.listen and not _endpoint(args.listen, "--listen", bind=True):
+        return EXIT_SCENARIO
+    target = args.scenario or DEFAULT_DEMO
+    swarm = _load_or_explain(target, load)
+    if swarm is None:
         return EXIT_SCENARIO
     inventory = None
     if args.inventory is not None:
@@ -155,6 +318,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
             listen=args.listen,
             heartbeat_timeout=args.heartbeat_timeout,
             inventory=inventory,
+            handshake_timeout=args.join_timeout,
+            on_join=_JoinProgress() if args.no_launch else None,
         )
     finally:
         if view is not None:
@@ -169,21 +334,22 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from coordinator._api import check
-    from topologies._errors import ScenarioError
 
-    try:
-        info = check(args.scenario)
-    except ScenarioError as exc:
-        _err(str(exc))
-        return EXIT_SCENARIO
-    except FileNotFoundError as exc:
-        _err(f"{args.scenario}: no such file ({exc.strerror})")
+    info = _load_or_explain(args.scenario, check)
+    if info is None:
         return EXIT_SCENARIO
     if args.json:
         info = {k: v for k, v in info.items() if k != "resolved_toml"}
         print(json.dumps(info, indent=2))
         return 0
     print(info["resolved_toml"])
+    alg = info["algorithm"]
+    print(f'# algorithm options every agent uses ("{alg["name"]}", its own defaults filled)')
+    if alg["options"]:
+        for k, v in alg["options"].items():
+            print(f"#   {k} = {_short(v)}")
+    else:
+        print("#   none")
     print("# graph facts")
     for k, v in info["graph"].items():
         if isinstance(v, dict):
@@ -197,8 +363,12 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _short(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
     if isinstance(v, float):
         return f"{v:.6g}"
+    if isinstance(v, str):
+        return json.dumps(v)
     if isinstance(v, list):
         return "[" + ", ".join(_short(x) for x in v) + "]"
     if isinstance(v, dict):
@@ -207,6 +377,9 @@ def _short(v: Any) -> str:
 
 
 def _cmd_node(args: argparse.Namespace) -> int:
+    # checked here, before the process joins anything: ZeroMQ says only "Invalid argument"
+    if not _endpoint(args.join, "--join", bind=False):
+        return EXIT_SCENARIO
     from node._runtime import _set_parent_death_signal
     from node._runtime import main as node_main
 
@@ -217,7 +390,10 @@ def _cmd_node(args: argparse.Namespace) -> int:
 def _cmd_bench(args: argparse.Namespace) -> int:
     from coordinator._bench import bench, print_bench
 
-    res = bench(quick=args.quick)
+    def progress(done: int, total: int, what: str) -> None:
+        print(f"bench [{done}/{total}] {what}", file=sys.stderr, flush=True)
+
+    res = bench(quick=args.quick, progress=progress)
     if args.json:
         print(json.dumps(res, indent=2))
     else:
@@ -225,10 +401,21 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     return 0
 
 
+_COMMANDS = {"run": _cmd_run, "check": _cmd_check, "node": _cmd_node, "bench": _cmd_bench}
+
+
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
-    cmd = {"run": _cmd_run, "check": _cmd_check, "node": _cmd_node, "bench": _cmd_bench}
-    return cmd[args.command](args)
+    try:
+        code = _COMMANDS[args.command](args)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        # The reader went away (`swarmrig check x | head`): no traceback, and nothing more
+        # written to the closed pipe when Python flushes standard output at exit.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_BROKEN_PIPE
+    return code
 
 
 if __name__ == "__main__":

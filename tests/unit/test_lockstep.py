@@ -170,10 +170,10 @@ def test_another_seed_drops_other_messages(tmp_path: Path) -> None:
     ("change", "key"),
     [
         ({"swarm": {"mode": "async", "seconds": 0.2}}, r"\[swarm\]\.mode"),
-        ({"fault": [{"kind": "crash", "agents": [1], "start_s": 0.1}]}, r"fault\[0\]\.kind"),
+        ({"fault": [{"kind": "crash", "agents": [1], "start_s": 0.1}]}, r"\[\[fault\]\] #0: kind"),
         (
             {"fault": [{"kind": "pause", "agents": [1], "start_s": 0.1, "duration_s": 0.1}]},
-            r"fault\[0\]\.kind",
+            r"\[\[fault\]\] #0: kind",
         ),
         (
             {
@@ -182,7 +182,7 @@ def test_another_seed_drops_other_messages(tmp_path: Path) -> None:
                     {"kind": "slow", "agents": [2], "factor": 2.0},
                 ]
             },
-            r"fault\[1\]\.kind",
+            r"\[\[fault\]\] #1: kind",
         ),
     ],
 )

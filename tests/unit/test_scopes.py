@@ -12,7 +12,7 @@ from scipy.spatial.distance import cdist
 from coordinator._scopes import links_in_scope
 from topologies._errors import ScenarioError
 
-WHERE = "scenario.toml: fault[1].links"
+WHERE = "scenario.toml: [[fault]] #1: links"
 
 
 @dataclass(frozen=True)
@@ -44,7 +44,9 @@ def test_all_is_every_directed_link() -> None:
 
 def test_one_directed_link() -> None:
     assert links_in_scope({"from": 2, "to": 3}, RING, where=WHERE) == [(2, 3)]
-    with pytest.raises(ScenarioError, match=r"fault\[1\].links: the topology has no link 0 -> 3"):
+    with pytest.raises(
+        ScenarioError, match=r"\[\[fault\]\] #1: links: the topology has no link 0 -> 3"
+    ):
         links_in_scope({"from": 0, "to": 3}, RING, where=WHERE)
 
 
@@ -121,7 +123,7 @@ def test_longer_than_needs_positions() -> None:
 @pytest.mark.parametrize(
     ("scope", "match"),
     [
-        ("none", r"fault\[1\].links: expected a link scope \"all\""),
+        ("none", r"\[\[fault\]\] #1: links: expected a link scope \"all\""),
         ({}, "expected a link scope"),
         ({"from": 1, "edge": [1, 2]}, "expected a link scope"),
         ({"form": 1}, "expected a link scope"),
