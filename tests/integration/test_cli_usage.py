@@ -4,7 +4,7 @@ and a coordinator waiting for hand-started agents says where and how many have j
 from __future__ import annotations
 
 import json
-import socket
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -14,12 +14,6 @@ import pytest
 pytestmark = pytest.mark.integration
 
 CLI = [sys.executable, "-m", "coordinator.cli"]
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _swarmrig(*args: str) -> subprocess.CompletedProcess[str]:
@@ -122,12 +116,13 @@ transport = "tcp"
 host = "127.0.0.1"
 """
     )
-    endpoint = f"tcp://127.0.0.1:{_free_port()}"
+    # the system picks the port (no race with other tests for a free one); the coordinator
+    # says which it got
     coord = processes.start(
         "run",
         str(scenario),
         "--listen",
-        endpoint,
+        "tcp://127.0.0.1:*",
         "--no-launch",
         "--join-timeout",
         "300",
@@ -137,10 +132,13 @@ host = "127.0.0.1"
         "--json",
     )
     assert coord.stderr is not None
-    assert (
-        coord.stderr.readline()
-        == f"swarmrig: waiting for {n} agents at {endpoint}; start each with\n"
+    first = coord.stderr.readline()
+    waiting = re.fullmatch(
+        rf"swarmrig: waiting for {n} agents at (tcp://127\.0\.0\.1:\d+); start each with\n",
+        first,
     )
+    assert waiting, first
+    endpoint = waiting[1]
     assert coord.stderr.readline() == f"  swarmrig node --join {endpoint} --agent ID\n"
     assert coord.stderr.readline() == f"joined 0 of {n}\n"
     for i in range(n):
