@@ -5,7 +5,7 @@ import os as _os
 for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     _os.environ.setdefault(_v, "1")
 
-from coordinator._api import check, load, run  # noqa: E402
+from coordinator._api import check, load, read_trajectories, run  # noqa: E402
 from coordinator._batch import check_batch, run_batch  # noqa: E402
 from coordinator._reference import Reference, reference_optimum, total_objective  # noqa: E402
 from coordinator._run import RunOptions, RunResult  # noqa: E402
@@ -34,6 +34,7 @@ __all__ = [
     "links_in_scope",
     "load",
     "load_scenario",
+    "read_trajectories",
     "reference_optimum",
     "run",
     "run_batch",

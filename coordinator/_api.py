@@ -14,9 +14,10 @@ from coordinator._endpoints import check_endpoint
 from coordinator._run import RunOptions, RunResult, execute
 from coordinator._scenario import Scenario, is_file, load_scenario
 from coordinator._swarm import Swarm, build_swarm
+from coordinator._trajectories import read_trajectories
 from topologies._errors import ScenarioError
 
-__all__ = ["check", "load", "run"]
+__all__ = ["check", "load", "read_trajectories", "run"]
 
 
 def load(scenario: str | Path | Mapping[str, Any] | Scenario) -> Swarm:

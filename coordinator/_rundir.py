@@ -6,6 +6,7 @@ import csv
 import datetime as dt
 import json
 import math
+import re
 from pathlib import Path
 from typing import Any
 
@@ -82,7 +83,8 @@ class RunDir:
         f = self._tel.get(agent)
         if f is None:
             f = self._tel[agent] = (self.path / "telemetry" / f"agent-{agent}.msgpack").open("ab")
-        f.write(msgpack.packb(batch))
+        # string keys only, so that any msgpack reader takes the file with its defaults
+        f.write(msgpack.packb(_string_keys(batch)))
         f.flush()
 
     def write_csv(self, name: str, columns: tuple[str, ...], rows: list[dict[str, Any]]) -> None:
@@ -106,11 +108,32 @@ class RunDir:
         self._events.close()
 
 
+def _string_keys(obj: Any) -> Any:
+    """``obj`` with every map key written as a string (agent ids and epochs become "3")."""
+    if isinstance(obj, dict):
+        return {k if isinstance(k, str) else str(k): _string_keys(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple) and any(isinstance(v, dict | list | tuple) for v in obj):
+        return [_string_keys(v) for v in obj]
+    return obj
+
+
+_INT_KEY = re.compile(r"-?[0-9]+")
+
+
+def _int_keys(pairs: list[tuple[Any, Any]]) -> dict[Any, Any]:
+    # files hold agent ids and epochs as "3" (or, written before, as 3): read both as 3
+    return {int(k) if isinstance(k, str) and _INT_KEY.fullmatch(k) else k: v for k, v in pairs}
+
+
 def read_telemetry(path: Path) -> list[dict[str, Any]]:
-    """Every batch of one telemetry file, in arrival order (a torn last batch is skipped)."""
+    """Every batch of one telemetry file, in arrival order (a torn last batch is skipped).
+
+    Map keys that are agent ids or epochs come back as integers, whether the file wrote them
+    as strings (now) or as integers (older files).
+    """
     out = []
     with path.open("rb") as f:
-        unpacker = msgpack.Unpacker(f, strict_map_key=False)
+        unpacker = msgpack.Unpacker(f, strict_map_key=False, object_pairs_hook=_int_keys)
         try:
             for obj in unpacker:
                 out.append(obj)
