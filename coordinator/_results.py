@@ -447,12 +447,18 @@ def recovery(
         if settle == len(rows):
             rec["not_recovered"] = "not within tolerance at the end of the run"
             continue
-        at = max(settle, first_after)
-        rec["recovered_at_s"] = float(rows[at]["t_s"])
-        rec["recovered_after_s"] = max(0.0, float(rows[at]["t_s"]) - t_end)
+        if settle < first_after:
+            # within tolerance already when the window ended, and staying
+            rec["recovered_at_s"] = t_end
+            rec["recovered_after_s"] = 0.0
+            if w.unit == "iteration":
+                rec["recovered_after_iterations"] = 0.0
+            continue
+        rec["recovered_at_s"] = float(rows[settle]["t_s"])
+        rec["recovered_after_s"] = max(0.0, float(rows[settle]["t_s"]) - t_end)
         if w.unit == "iteration":
             rec["recovered_after_iterations"] = max(
-                0.0, float(rows[at]["iteration_median"]) - float(w.end)
+                0.0, float(rows[settle]["iteration_median"]) - float(w.end)
             )
     return out
 
