@@ -11,7 +11,18 @@ from coordinator._swarm import Swarm, build_swarm
 
 __all__ = ["attach_baseline"]
 
-COMPARED = ("final_gap", "final_consensus_error", "time_to_tolerance_s", "verdict")
+#: figures put side by side (the faulty run's ``recovery`` goes with them: the baseline has
+#: no fault windows, so its settled time is what each recovery compares with)
+COMPARED = (
+    "final_gap",
+    "worst_agent_gap",
+    "median_agent_gap",
+    "final_consensus_error",
+    "agreement_relative",
+    "time_to_tolerance_s",
+    "first_within_tolerance_s",
+    "verdict",
+)
 
 
 def attach_baseline(swarm: Swarm, result: RunResult, options: RunOptions) -> RunResult:
@@ -28,6 +39,10 @@ def attach_baseline(swarm: Swarm, result: RunResult, options: RunOptions) -> Run
     }
     result.summary["with_and_without_faults"] = {
         k: {"with_faults": result.summary.get(k), "without_faults": b.get(k)} for k in COMPARED
+    }
+    result.summary["with_and_without_faults"]["recovery"] = {
+        "with_faults": result.summary.get("recovery", []),
+        "without_faults": b.get("recovery", []),
     }
     (result.run_dir / "summary.json").write_text(
         json.dumps(_clean(result.summary), indent=2) + "\n"

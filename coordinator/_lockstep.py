@@ -35,6 +35,7 @@ mode and process faults (crash, pause, slow).
 
 from __future__ import annotations
 
+import dataclasses
 import getpass
 import math
 import os
@@ -160,7 +161,8 @@ class LockstepCoordinator(Coordinator):
                 "RunOptions.listen / launch_local: the lockstep engine runs every agent inside"
                 " this process; it cannot wait for agents on other machines"
             )
-        super().__init__(swarm, options)
+        # summary.json and the view name the engine that really ran
+        super().__init__(swarm, dataclasses.replace(options, engine="lockstep"))
         self.period_s = float(self.s.timing["period_ms"]) / 1000.0
         self.members: list[_Member] = []
         self._idents: list[bytes] = []
@@ -328,8 +330,7 @@ class LockstepCoordinator(Coordinator):
         for m in self.members:
             if not m.done:
                 m.flush()
-        if self.view is not None:
-            self.view(self)
+        self.show()
 
     def _check_round(self) -> None:
         """Between rounds: the base run phase's stop conditions, in its order."""

@@ -196,8 +196,16 @@ def metric_series(
     """
     gap = gap or GapFunction(objectives, intended, reference)
     per_agent: dict[int, list[tuple]] = {}
-    for r in records:
-        per_agent.setdefault(r.agent, []).extend(r.samples)
+    for r in sorted(records, key=lambda r: (r.agent, r.epoch)):
+        lst = per_agent.setdefault(r.agent, [])
+        if by_iteration and lst:
+            # A restarted agent repeats the iterations its old incarnation reached after its
+            # last sample; a row at iteration k shows the state the agent first had at k
+            # (which matches the row's time); the repeats stay in telemetry/.
+            reached = max(s[0] for s in lst)
+            lst.extend(s for s in r.samples if s[0] > reached)
+        else:
+            lst.extend(r.samples)
     if not per_agent:
         return []
     for lst in per_agent.values():

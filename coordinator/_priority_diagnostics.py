@@ -1,6 +1,11 @@
-"""What the priority-weighted mix really optimizes, from the rows the agents used.
+"""What the priority-weighted mix really optimizes, from the mixing the agents did.
 
-With the row-stochastic mixing matrix A (row i = agent i's last ``mixing_row``) and
+The matrix that counts is the mix in expectation over the run: each agent's row built from
+its priorities and the delivery rate of each in-link (:func:`expected_mixing_matrix`). The
+rows of the last round (each agent's last ``mixing_row``) are a snapshot of which messages
+happened to arrive then, reported apart and labelled as such.
+
+With a row-stochastic mixing matrix A and
 pi^T A = pi^T, the pi-weighted average of the states follows gradient descent on
 sum_i pi_i f_i, so pi are the *effective* priorities; they equal the intended ones when
 every agent holds the same vector on a connected undirected graph (the chain is reversible)
@@ -30,7 +35,9 @@ from topologies._errors import SwarmrigError
 
 __all__ = [
     "Influence",
+    "delivery_rates",
     "effective_priorities",
+    "expected_mixing_matrix",
     "influence",
     "mixing_matrix",
     "priority_report",
@@ -155,20 +162,65 @@ def effective_priorities(a: np.ndarray) -> np.ndarray:
     return influence(a).priorities
 
 
+def delivery_rates(
+    link_rows: Sequence[Mapping[str, Any]], *, reuse: bool = False
+) -> dict[tuple[int, int], float]:
+    """(from, to) -> the share of the link's settled messages that arrived, from links.csv
+    rows: delivered / (sent - in_flight). With ``reuse`` (a silent neighbour's last value is
+    used) a link that delivered anything counts as always heard."""
+    out = {}
+    for r in link_rows:
+        settled = int(r["sent"]) - int(r["in_flight"])
+        q = int(r["delivered"]) / settled if settled > 0 else 0.0
+        if reuse:
+            q = 1.0 if int(r["delivered"]) > 0 else 0.0
+        out[(int(r["from"]), int(r["to"]))] = min(1.0, q)
+    return out
+
+
+def expected_mixing_matrix(
+    priorities: np.ndarray,
+    in_neighbours: Mapping[int, Sequence[int]],
+    rates: Mapping[tuple[int, int], float],
+) -> np.ndarray:
+    """The mixing matrix in expectation over the run (methods.md, "Expected mixing under
+    independent loss"): agent i hears in-neighbour j with probability q_ji = rates[(j, i)],
+    so row i puts q_ji w_i^j on j and the rest, w_i^i + sum_j (1 - q_ji) w_i^j plus every
+    non-neighbour's priority, on itself. ``priorities``: row i is agent i's vector."""
+    w = np.asarray(priorities, dtype=float)
+    n = w.shape[0]
+    a = np.zeros((n, n))
+    for i in range(n):
+        for j in in_neighbours.get(i, ()):
+            if j != i:
+                a[i, j] = rates.get((j, i), 0.0) * w[i, j]
+        a[i, i] = 1.0 - a[i].sum()
+    return a
+
+
 def priority_report(
     initial_priorities: np.ndarray,
     final_priorities: np.ndarray,
     final_rows: Mapping[int, Mapping[int, float]] | None,
     objectives: Sequence[Objective],
     x_hat: np.ndarray,
+    *,
+    expected: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Intended vs agreed vs effective priorities, and the gap of x_hat under each weighting.
 
-    Keys: ``intended_priorities`` (mean of the initial vectors), ``agreed_priorities``
-    (``mean`` of the final vectors and ``max_disagreement``, the largest |w_i^j - mean^j|),
-    ``effective_priorities`` (from the final rows), ``effective_note``, ``closed_classes``,
-    ``gap_to_intended`` and ``gap_to_effective`` (F_w(x_hat) - F_w* for each weighting),
-    ``x_star_intended``, ``x_star_effective``, and ``intended_vs_effective_l1``. Plain
+    ``expected`` is the mixing matrix over the run (:func:`expected_mixing_matrix` from the
+    links' delivery rates); the rows of the last round (``final_rows``) are only a snapshot
+    of which messages happened to arrive then. Keys: ``intended_priorities`` (mean of the
+    initial vectors), ``agreed_priorities`` (``mean`` of the final vectors and
+    ``max_disagreement``, the largest |w_i^j - mean^j|), ``effective_priorities`` (from
+    ``expected``, or from the last round when it is not given), ``effective_source``,
+    ``effective_note``, ``closed_classes``, ``effective_vs_intended`` ({l1, max} distance),
+    ``last_round_priorities`` (the left Perron vector of the last round's rows, labelled as
+    such), ``last_round_note``, ``last_round_vs_intended``, ``gap_to_intended`` and
+    ``gap_to_effective`` (F_w(x_hat) - F_w* for each weighting), ``x_star_intended``,
+    ``x_star_effective``, and ``intended_vs_effective_l1``; with neither rows nor
+    ``expected`` (a method that mixes no states) only the intended and agreed keys. Plain
     floats and lists only, so the dict is JSON-able.
     """
     w0 = np.asarray(initial_priorities, dtype=float)
@@ -183,6 +235,11 @@ def priority_report(
     intended = w0.mean(axis=0)
     agreed = wf.mean(axis=0)
     ref_intended = reference_optimum(objectives, intended)
+
+    def distance(p: np.ndarray) -> dict[str, float]:
+        d = np.abs(p - intended)
+        return {"l1": float(d.sum()), "max": float(d.max())}
+
     report: dict[str, Any] = {
         "intended_priorities": intended.tolist(),
         "agreed_priorities": {
@@ -192,19 +249,34 @@ def priority_report(
         "gap_to_intended": total_objective(objectives, intended, x_hat) - ref_intended.F_star,
         "x_star_intended": ref_intended.x_star.tolist(),
     }
-    if final_rows is None:  # a method that mixes no states (ratio consensus): no effective row
+    if final_rows is None and expected is None:
+        # a method that mixes no states (ratio consensus): no effective row
         return report
-    inf = influence(mixing_matrix(final_rows, n))
+    last = None if final_rows is None else influence(mixing_matrix(final_rows, n))
+    inf = influence(expected) if expected is not None else last
+    assert inf is not None
     ref_effective = reference_optimum(objectives, inf.priorities)
     report.update(
         {
             "effective_priorities": inf.priorities.tolist(),
+            "effective_source": "last round"
+            if expected is None
+            else "delivery rates over the run",
             "effective_note": inf.note,
             "closed_classes": [list(c) for c in inf.closed_classes],
+            "effective_vs_intended": distance(inf.priorities),
             "gap_to_effective": total_objective(objectives, inf.priorities, x_hat)
             - ref_effective.F_star,
             "x_star_effective": ref_effective.x_star.tolist(),
             "intended_vs_effective_l1": float(np.abs(intended - inf.priorities).sum()),
         }
     )
+    if last is not None:
+        report.update(
+            {
+                "last_round_priorities": last.priorities.tolist(),
+                "last_round_note": "snapshot: the rows of the last round only; " + last.note,
+                "last_round_vs_intended": distance(last.priorities),
+            }
+        )
     return report

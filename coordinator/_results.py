@@ -390,7 +390,9 @@ def recovery(
 
     * ``before``: the figures of the last row before the window (null if it starts first);
     * ``peak``: the row inside the window with the largest worst-agent gap, and
-      ``peak_agreement`` the largest consensus error inside it;
+      ``peak_agreement`` the largest consensus error inside it; ``peak_after_end`` the row
+      with the largest worst-agent gap from the end of the window until the recovery (or the
+      last row): what a crash leaves behind shows after the agent rejoins;
     * ``recovered_after_s``: from the end of the window to the first row from which the
       worst agent's gap stays within ``threshold`` to the last row (0 if it already was at
       the end of the window); also ``recovered_after_iterations`` for windows in
@@ -407,6 +409,7 @@ def recovery(
             "before": None,
             "peak": None,
             "peak_agreement": None,
+            "peak_after_end": None,
             "end_t_s": None,
             "recovered_after_s": None,
             "recovered_after_iterations": None,
@@ -444,6 +447,10 @@ def recovery(
         settle = len(rows)
         while settle > 0 and _within(rows[settle - 1]["worst_agent_gap"], threshold):
             settle -= 1
+        # what the fault left behind: the worst row from its end until recovery (or the end)
+        tail = rows[first_after : max(settle, first_after + 1)]
+        if tail:
+            rec["peak_after_end"] = _figures(max(tail, key=lambda r: _rank(r["worst_agent_gap"])))
         if settle == len(rows):
             rec["not_recovered"] = "not within tolerance at the end of the run"
             continue

@@ -34,7 +34,9 @@ from coordinator._metrics import (
 )
 from coordinator._results import GapFunction, fault_windows, target_spread, verdict_figures
 from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
+from coordinator._snapshot import take_snapshot
 from coordinator._swarm import Swarm, with_transport
+from coordinator._window_events import WindowEvents
 from node._errors import WireError
 from node._wire import MAX_CONTROL_FRAME, decode_control, encode_control
 from topologies._errors import SwarmrigError
@@ -65,8 +67,9 @@ class RunOptions:
     #: the run directory itself; default runs/<name>-<UTC timestamp>
     out: Path | None = None
     runs_root: Path = Path("runs")
-    #: None (nothing shown) or a callable given the coordinator a few times a second
-    #: (coordinator._view.LiveView renders the live view)
+    #: None (nothing shown) or a callable given a frozen coordinator._snapshot.Snapshot a
+    #: few times a second, and the last one (after the results) through its ``final``
+    #: method if it has one (coordinator._view.LiveView renders the live view)
     view: Any = None
     #: control endpoint to bind; tcp://127.0.0.1:* by default
     listen: str | None = None
@@ -168,6 +171,7 @@ class Coordinator:
         out = options.out or RunDir.default_path(self.s.name, options.runs_root)
         self.dir = RunDir(Path(out))
         self.view = options.view
+        self.window_events = WindowEvents(self.s.faults, self.n)
         self.run_json: dict[str, Any] = {}
         self.ipc_dir: str | None = None
 
@@ -493,8 +497,11 @@ class Coordinator:
     def on_telemetry(self, a: _Agent, msg: dict[str, Any]) -> None:
         rec = a.record
         t0 = self.agent_time_origin(a)
+        new = len(rec.samples)
         for s in msg["samples"]:
             rec.samples.append((int(s[0]), float(s[1]) - a.offset - t0, s[2], s[3], s[4], s[5]))
+        if self.window_events.windows and len(rec.samples) > new:
+            self.note_windows(a, rec.samples[new:])
         rec.links = {int(k): {int(e): v for e, v in per.items()} for k, per in msg["links"].items()}
         rec.counters = msg["counters"]
         if msg["samples"]:
@@ -509,6 +516,25 @@ class Coordinator:
                     "counters": msg["counters"],
                 },
             )
+
+    def note_windows(self, a: _Agent, samples: list[tuple]) -> None:
+        """Record the start and end of fault windows the agents enforce themselves."""
+        dead = [b.id for b in self.agents if b.dead and not b.restart_pending]
+        for ev in self.window_events.observe(a.id, [(s[0], s[1]) for s in samples], dead):
+            self.event(ev.pop("event"), **ev)
+
+    def show(self, *, final: bool = False, summary: dict[str, Any] | None = None) -> None:
+        """Hand the view a frozen snapshot: live frames as a callable (built only when the
+        view will draw one), the frame after the results to its ``final`` method if any."""
+        if self.view is None:
+            return
+        if final:
+            if hasattr(self.view, "final"):
+                self.view.final(take_snapshot(self, final=True, summary=summary))
+            return
+        wants = getattr(self.view, "wants_frame", None)
+        if wants is None or wants():
+            self.view(take_snapshot(self))
 
     # -- the fault timeline ------------------------------------------------------------
     def schedule(self, at_s: float, what: str, action: Callable[[], None]) -> None:
@@ -707,8 +733,7 @@ class Coordinator:
             for a in self.agents:
                 if a.ready and not a.running and not a.dead and self.restart_ready(a):
                     self.go(a)
-            if self.view is not None:
-                self.view(self)
+            self.show()
             if self.stop_requested:
                 raise _Stop(self.stop_requested, 130)
             if self.unexpected:
@@ -809,7 +834,7 @@ class Coordinator:
             "exit": self.exit_reason,
             "run_dir": str(self.dir.path),
         }
-        summary.update(self.extra_summary(records, figures["x_hat"]))
+        summary.update(self.extra_summary(records, figures["x_hat"], links))
         self.dir.write_json("summary.json", summary)
         return RunResult(
             summary=summary,
@@ -823,15 +848,19 @@ class Coordinator:
         times = [r.samples[-1][1] for a in self.agents for r in a.records if r.samples]
         return max(times) if times else None
 
-    def extra_summary(self, records: list[AgentRecord], x_hat: Any) -> dict[str, Any]:
+    def extra_summary(
+        self, records: list[AgentRecord], x_hat: Any, links: list[dict[str, Any]]
+    ) -> dict[str, Any]:
         """Algorithm-specific diagnostics (priorities); empty when not applicable."""
         sw = self.swarm
         if sw.initial_priorities is None or x_hat is None:
             return {}
-        try:
-            from coordinator._priority_diagnostics import priority_report
-        except ImportError:
-            return {}
+        from coordinator._priority_diagnostics import (
+            delivery_rates,
+            expected_mixing_matrix,
+            priority_report,
+        )
+
         finals_w, rows = [], {}
         for a in self.agents:
             r = a.records[-1] if a.records else None
@@ -844,12 +873,20 @@ class Coordinator:
                 rows[a.id] = {int(k): float(v) for k, v in st["mixing_row"].items()}
         if len(finals_w) != self.n:
             return {}
+        expected = None
+        if len(rows) == self.n:
+            reuse = sw.algorithm.get("params", {}).get("missing") == "reuse"
+            ins = {i: sw.topology.in_neighbours(i) for i in range(self.n)}
+            expected = expected_mixing_matrix(
+                np.asarray(finals_w), ins, delivery_rates(links, reuse=reuse)
+            )
         return priority_report(
             sw.initial_priorities,
             np.asarray(finals_w),
             rows or None,
             sw.objectives,
             np.asarray(x_hat),
+            expected=expected,
         )
 
     # -- the whole run -----------------------------------------------------------------
@@ -879,6 +916,7 @@ class Coordinator:
             self._restore_signals(handlers)
         self.event("stop", reason=self.exit_reason)
         result = self.results()
+        self.show(final=True, summary=result.summary)
         self.write_run_json(
             exit=self.exit_reason,
             exit_code=self.exit_code,

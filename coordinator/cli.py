@@ -86,7 +86,16 @@ def _add_run(sub: Any) -> None:
         metavar="DIR",
         help="where default run directories go (default ./runs)",
     )
-    r.add_argument("--quiet", action="store_true", help="no live view, no summary table")
+    r.add_argument(
+        "--quiet",
+        action="store_true",
+        help="no live view, no summary table: one line (verdict, worst-agent gap, run directory)",
+    )
+    r.add_argument(
+        "--strict-exit",
+        action="store_true",
+        help="exit 4 when the run ends without reaching tolerance, 5 when it diverged",
+    )
     r.add_argument("--json", action="store_true", help="print summary.json on standard output")
     r.add_argument(
         "--baseline",
@@ -257,6 +266,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     from coordinator._api import load, run
     from coordinator._demos import DEFAULT_DEMO, list_demos
+    from coordinator._results import quiet_line, strict_exit_status
     from coordinator._view import LiveView, summary_table
     from topologies._errors import ScenarioError
 
@@ -326,9 +336,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
             view.close()
     if args.json:
         print(json.dumps(result.summary, indent=2))
-    if not args.quiet:
+    if args.quiet:
+        # stdout is the JSON's when --json is given
+        print(quiet_line(result.summary), file=sys.stderr if args.json else sys.stdout)
+    else:
         console.print()
         console.print(summary_table(result.summary))
+    if args.strict_exit and result.exit_code == 0:
+        return strict_exit_status(result.summary)
     return result.exit_code
 
 

@@ -49,6 +49,7 @@ RECOVERY_KEYS = (
     "before",
     "peak",
     "peak_agreement",
+    "peak_after_end",
     "end_t_s",
     "recovered_after_s",
     "recovered_after_iterations",

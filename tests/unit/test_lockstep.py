@@ -227,7 +227,11 @@ def test_run_directory_is_complete(tmp_path: Path) -> None:
     assert t_s[1:-1] == [(i - 1) * 1e-3 for i in range(10, 300, 10)]
     assert t_s[-1] == 300 * 1e-3
     events = [json.loads(line) for line in (d / "events.jsonl").read_text().splitlines()]
-    assert [e["event"] for e in events] == ["go", "stop"]
+    # faults armed from the start for the whole run: one fault-start each, seen at round 0
+    assert [e["event"] for e in events] == ["go"] + ["fault-start"] * len(FAULTS) + ["stop"]
+    starts = [e for e in events if e["event"] == "fault-start"]
+    assert sorted(e["fault"] for e in starts) == list(range(len(FAULTS)))
+    assert all(e["at_s"] == 0.0 and e["t_sample_s"] == 0.0 for e in starts)
 
 
 def test_message_accounting_is_exact(tmp_path: Path) -> None:
