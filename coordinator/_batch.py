@@ -186,6 +186,7 @@ def execute_many(coords: Sequence[BatchCoordinator]) -> list[RunResult]:
     for c in coords:
         c.event("stop", reason=c.exit_reason)
         result = c.results()
+        c.show(final=True, summary=result.summary)
         c.write_run_json(
             exit=c.exit_reason,
             exit_code=c.exit_code,

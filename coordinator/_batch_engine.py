@@ -149,8 +149,7 @@ class Engine:
                         return
                 if view and (k + 1) % ROUNDS_PER_FLUSH == 0:
                     for c in self.coords:
-                        if c.view is not None:
-                            c.view(c)
+                        c.show()
                 if any(c.stop_requested for c in self.coords):
                     for s, c in enumerate(self.coords):
                         if self.stopped[s] is None:

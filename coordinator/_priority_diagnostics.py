@@ -259,9 +259,7 @@ def priority_report(
     report.update(
         {
             "effective_priorities": inf.priorities.tolist(),
-            "effective_source": "last round"
-            if expected is None
-            else "delivery rates over the run",
+            "effective_source": "last round" if expected is None else "delivery rates over the run",
             "effective_note": inf.note,
             "closed_classes": [list(c) for c in inf.closed_classes],
             "effective_vs_intended": distance(inf.priorities),

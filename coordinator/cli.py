@@ -337,8 +337,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(result.summary, indent=2))
     if args.quiet:
-        # stdout is the JSON's when --json is given
-        print(quiet_line(result.summary), file=sys.stderr if args.json else sys.stdout)
+        if not args.json:  # the JSON already holds verdict, worst-agent gap and run_dir
+            print(quiet_line(result.summary))
     else:
         console.print()
         console.print(summary_table(result.summary))
