@@ -81,8 +81,8 @@ def test_outage_by_iteration_window_in_rounds_mode(processes, tmp_path):
 
 
 def test_outage_by_time_window_in_async_mode(processes, tmp_path):
-    t_on, length, period_ms = 0.5, 0.4, 2.0
-    sc = base("outage-async", mode="async", seconds=1.4)
+    t_on, length, period_ms, seconds = 0.5, 1.0, 2.0, 2.2
+    sc = base("outage-async", mode="async", seconds=seconds)
     sc["timing"] = {"period_ms": period_ms, "jitter": 0.1}
     sc["telemetry"] = {"every_iterations": 1, "batch_ms": 10.0}
     sc["fault"] = [
@@ -99,11 +99,20 @@ def test_outage_by_time_window_in_async_mode(processes, tmp_path):
     applied = [e for e in ev if e["event"] == "fault-applied"]
     assert [(e["action"], e["agent"]) for e in applied] == [("add", 1), ("remove", 1)], applied
     assert sent[0]["t_s"] >= t_on and sent[1]["t_s"] >= t_off
+    # Event order, not latency: the add was applied after it was sent and before the remove
+    # was sent (a loaded machine may make either late).
+    order = [(e["event"], e["action"]) for e in ev if e["event"] in ("fault-sent", "fault-applied")]
+    assert order == [
+        ("fault-sent", "add"),
+        ("fault-applied", "add"),
+        ("fault-sent", "remove"),
+        ("fault-applied", "remove"),
+    ], order
     # A directive acts from its acknowledgement (design: events.jsonl keeps both times); the
     # node tests the fault's own window on its clock too, so the outage is exactly
     # [max(start, applied), end) there.
     t_applied = applied[0]["t_node_s"]
-    assert t_on <= t_applied < t_on + 0.5, f"the outage was applied at {t_applied:.3f} s"
+    assert t_on <= t_applied, f"the outage was applied at {t_applied:.3f} s, before its start"
     eff_on = max(t_on, t_applied)
 
     # Every message agent 0 published, with its send time: in async mode message seq k is
@@ -112,27 +121,35 @@ def test_outage_by_time_window_in_async_mode(processes, tmp_path):
     c = in_counters(final_report(result.run_dir, 1), 0)
     seqs = decided_seqs(c)
     t_send = np.array([sends[s] for s in seqs])
-    # the drops are the messages sent inside the outage, give or take the one in transit
-    # at each end (a transit takes well under a period here)
-    in_window = int(np.count_nonzero((t_send >= eff_on) & (t_send < t_off)))
-    assert in_window >= PROGRESS * (t_off - eff_on) / (period_ms / 1e3), in_window
-    assert abs(c["dropped_injected"] - in_window) <= 2, (c["dropped_injected"], in_window)
-    assert link_rows(result.run_dir)[(0, 1)]["dropped_injected"] == c["dropped_injected"]
+    # A message is dropped exactly when it is received inside [eff_on, t_off): it was sent
+    # before t_off, and it is none of the messages delivered before the outage began. Those
+    # bounds hold however long a transit takes on a loaded machine.
+    dropped = c["dropped_injected"]
+    snaps = snapshots(result.run_dir, 1, 0)
+    before = [s[2]["delivered"] for s in snaps if s[0] < t_on]
+    assert before, "the receiver sent no batch before the outage"
+    sent_before_off = int(np.count_nonzero(t_send < t_off))
+    assert dropped <= sent_before_off - before[-1], (dropped, sent_before_off, before[-1])
+    assert dropped >= PROGRESS * (t_off - eff_on) / (period_ms / 1e3), dropped
+    assert link_rows(result.run_dir)[(0, 1)]["dropped_injected"] == dropped
+    # nothing received after the outage is dropped: every batch sampled after t_off shows
+    # the final count already
+    after = [s[2]["dropped_injected"] for s in snaps if s[0] >= t_off]
+    assert after and set(after) == {dropped}, (sorted(set(after)), dropped)
 
     # Per batch of the receiver: delivered on 0 -> 1 does not move inside the outage (a
-    # margin of two periods at each end for the message in transit), and moves after it.
-    snaps = snapshots(result.run_dir, 1, 0)
-    margin = 2 * period_ms / 1e3
+    # margin at each end for a message in transit and a batch that leaves late), and moves
+    # after it.
+    margin = 0.1
     inside = [s[2]["delivered"] for s in snaps if eff_on + margin <= s[0] < t_off - margin]
     assert len(inside) >= 5, len(inside)
     assert len(set(inside)) == 1, f"delivered moved during the outage: {sorted(set(inside))}"
     later = [s[2]["delivered"] for s in snaps if s[0] >= t_off + margin]
-    assert later and later[-1] - inside[-1] >= PROGRESS * (1.4 - t_off) / (period_ms / 1e3), (
+    assert later and later[-1] - inside[-1] >= PROGRESS * (seconds - t_off) / (period_ms / 1e3), (
         inside[-1],
         later[-1],
     )
-    before = [s[2]["delivered"] for s in snaps if s[0] < t_on - margin]
-    assert before and before[-1] >= PROGRESS * t_on / (period_ms / 1e3), before[-1:]
+    assert before[-1] >= PROGRESS * (t_on - margin) / (period_ms / 1e3), before[-1:]
 
 
 def test_partition_drops_exactly_the_links_between_the_groups(processes, tmp_path):
