@@ -38,6 +38,8 @@ from node._wire import MAX_DATA_FRAME, PROBE, decode_control, encode_control, en
 __all__ = ["BATCH_LIMIT", "Node", "main", "receive_batch", "spec_from_plan"]
 
 VERSION = "0.1.0"
+#: heartbeat interval of TCP data connections (ms); see _detect_dead_links
+DATA_HEARTBEAT_MS = 250
 #: an estimate beyond this (or not finite) means the run diverged
 DIVERGED = 1e12
 
@@ -97,6 +99,20 @@ def _set_parent_death_signal() -> None:
     with contextlib.suppress(Exception):
         libc = ctypes.CDLL("libc.so.6", use_errno=True)
         libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+
+
+def _detect_dead_links(pub: zmq.Socket, sub: zmq.Socket) -> None:
+    """Over TCP, a data connection silent for ``DATA_HEARTBEAT_MS * 3`` is dropped and made
+    again: what a partition sends meanwhile is lost (counted by the sequence gap) instead of
+    arriving seconds late in a burst when TCP's retransmission timer allows. The I/O thread
+    answers heartbeats, so a busy agent keeps its links; a SIGSTOPped one does not."""
+    for s in (pub, sub):
+        s.setsockopt(zmq.HEARTBEAT_IVL, DATA_HEARTBEAT_MS)
+        s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * DATA_HEARTBEAT_MS)
+        s.setsockopt(zmq.HEARTBEAT_TTL, 4 * DATA_HEARTBEAT_MS)
+    # a connection attempt lost in a partition is retried soon, not at TCP's SYN back-off
+    sub.setsockopt(zmq.CONNECT_TIMEOUT, 2 * DATA_HEARTBEAT_MS)
+    sub.setsockopt(zmq.RECONNECT_IVL, 100)
 
 
 def _advertise_host(bind_host: str, coordinator: str) -> str:
@@ -268,6 +284,8 @@ class Node:
         # codec refuses (and counts) any frame above MAX_DATA_FRAME and keeps the link.
         self.sub.setsockopt(zmq.MAXMSGSIZE, 64 * MAX_DATA_FRAME)
         self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        if plan.get("transport") != "ipc":
+            _detect_dead_links(self.pub, self.sub)
         self._sub_poller = zmq.Poller()
         self._sub_poller.register(self.sub, zmq.POLLIN)
         self.connected: dict[int, str] = {}
