@@ -17,10 +17,9 @@ node takes them. No sockets, no subprocesses. What it cannot reproduce it refuse
 anything is written (:func:`check_batch`): async mode, process faults and per-agent user
 algorithms.
 
-Differences from the other engines, none of which touches a figure: telemetry batches are
-handed over when the run stops (at every 200 rounds while a live view is shown), and only
-the last batch of each agent carries its link counters (the final report carries them in
-any case). ``wall_s``, ``startup_s``, ``run_s`` and ``iterations_per_s`` are this
+Differences from the other engines, none of which touches a figure: each agent's samples
+reach the coordinator as one telemetry batch when the run stops (a live view is called every
+200 rounds, and fills at the end). ``wall_s``, ``startup_s``, ``run_s`` and ``iterations_per_s`` are this
 process's own; with several seeds ``run_s`` is the time of the joint loop.
 """
 

@@ -102,6 +102,15 @@ class Engine:
 
     # -- the loop -----------------------------------------------------------------------
     def run(self) -> None:
+        """Run every seed to its stop, then hand each its telemetry and final reports."""
+        try:
+            self._loop()
+        finally:
+            for s, c in enumerate(self.coords):
+                if self.stopped[s] is not None:
+                    self.finish(s, c.exit_reason)
+
+    def _loop(self) -> None:
         alg, b, period = self.alg, self.block, self.period
         for c in self.coords:
             c.build_timeline()
@@ -285,7 +294,7 @@ class Engine:
         c.t_end = c.clock()
         c.vnow = final_t if final_t is not None else c.vnow
         c.stop_requested = c.stop_requested or reason
-        self.finish(s, reason)
+        # its reports are handed over when the loop ends, outside every seed's run time
 
     def _counts(self) -> dict[str, np.ndarray]:
         f = self.free_rounds
@@ -350,19 +359,16 @@ class Engine:
         return row
 
     def _flush(self, s: int, i: int, final: bool) -> None:
-        """Agent i's samples as telemetry, batched by the ROUNDS_PER_FLUSH rounds in which a
-        node would have sent them (the final sample after the last flush)."""
+        """Agent i's samples (the final one last) as one telemetry batch."""
         c = self.coords[s]
         snap = self.snap[s]
         r = self.offsets[s] + i
-        taken = [(q, False) for q in self.samples[: snap["samples"]]]
-        if final:
-            taken.append((snap["final"], True))
-        else:  # failed in its last round: no sample of that round
-            taken = [(q, f) for q, f in taken if q[0] < snap["rounds"]]
-        batches: dict[int, list[list[Any]]] = {}
-        for (it, t, x, p, v, rows), last in taken:
-            sample = [
+        taken = self.samples[: snap["samples"]]
+        # a failed agent has no sample of its last round; a finished one its final sample
+        last = [snap["final"]] if final else []
+        taken = [q for q in taken if final or q[0] < snap["rounds"]] + last
+        samples = [
+            [
                 int(it),
                 float(t),
                 x[r].tolist(),
@@ -370,18 +376,16 @@ class Engine:
                 float(v[r]),
                 None if rows is None else self._row(r, *rows),
             ]
-            key = it // ROUNDS_PER_FLUSH + 1 if last else -(-max(it, 1) // ROUNDS_PER_FLUSH)
-            batches.setdefault(key, []).append(sample)
-        keys = sorted(batches)
-        for n, key in enumerate(keys):
-            c.on_telemetry(
-                c.agents[i],
-                {
-                    "samples": batches[key],
-                    "links": self._link_report(s, i) if n == len(keys) - 1 else {},
-                    "counters": self._counters(s, i),
-                },
-            )
+            for it, t, x, p, v, rows in taken
+        ]
+        c.on_telemetry(
+            c.agents[i],
+            {
+                "samples": samples,
+                "links": self._link_report(s, i),
+                "counters": self._counters(s, i),
+            },
+        )
 
     def _counters(self, s: int, i: int) -> dict[str, Any]:
         snap = self.snap[s]

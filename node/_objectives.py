@@ -502,6 +502,15 @@ class BlockObjective:
             self.kind = "quadratic"
             self._t = np.array([o.target for o in objectives], dtype=float)
             self._q = np.array([o.curvature for o in objectives], dtype=float)
+            d = self._t.shape[1]
+            off = self._q * (1.0 - np.eye(d))
+            #: diagonal curvatures (identity by default): an elementwise product gives the
+            #: same numbers as the matrix product, whose other terms are exact zeros
+            self._diag = (
+                np.ascontiguousarray(np.diagonal(self._q, axis1=1, axis2=2))
+                if not off.any()
+                else None
+            )
         elif kinds in ({Logistic}, {Huber}) and len({o.features.shape for o in objectives}) == 1:
             self.kind = "logistic" if kinds == {Logistic} else "huber"
             self._a = np.array([o.features for o in objectives], dtype=float)
@@ -529,6 +538,8 @@ class BlockObjective:
     def grad(self, x: np.ndarray) -> np.ndarray:
         """(B, d) gradients; a per-agent objective's error names its agent."""
         if self.kind == "quadratic":
+            if self._diag is not None:
+                return self._diag * (x - self._t)
             return np.matmul(self._q, (x - self._t)[..., None])[..., 0]
         if self.kind == "logistic":
             m = self._y * np.matmul(self._a, x[..., None])[..., 0]
