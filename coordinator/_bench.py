@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 import zmq
 
-__all__ = ["bench", "message_path", "print_bench", "rounds_rate", "spawn_time"]
+__all__ = ["batch_rate", "bench", "message_path", "print_bench", "rounds_rate", "spawn_time"]
 
 
 def _scenario(n: int, mode: str = "rounds", iterations: int = 1, shape: str = "ring") -> dict:
@@ -63,6 +63,23 @@ def spawn_time(n: int) -> float:
 def rounds_rate(n: int, iterations: int) -> float:
     """Rounds mode on a ring of ``n``: agent iterations per second of the run phase."""
     return float(_run(_scenario(n, iterations=iterations))["iterations_per_s"])
+
+
+def batch_rate(n: int, rounds: int, seeds: int = 1, shape: str = "ring") -> float:
+    """The batch engine (DGD, ``seeds`` seeds in one block): agent iterations of every seed
+    per second of the joint round loop (run directories written, not timed)."""
+    from coordinator._batch import run_batch
+
+    sc = _scenario(n, iterations=rounds, shape=shape)
+    if shape == "random-geometric":
+        # well above the connectivity radius sqrt(ln n / (pi n)) of a random geometric graph
+        # in the unit square (Penrose 1997; from memory)
+        sc["topology"]["radius"] = float(np.sqrt(2.0 * np.log(n) / (np.pi * n)) * 1.6)
+    summaries = run_batch(sc, seeds=list(range(1, seeds + 1)))
+    for s in summaries:
+        if s["exit"] != "budget":
+            raise RuntimeError(f"bench batch run failed: {s['exit']}")
+    return sum(s["iterations_total"] for s in summaries) / summaries[0]["run_s"]
 
 
 def _sender(
@@ -198,7 +215,7 @@ def bench(
     rounds = 300 if quick else 4000
     count = 50_000 if quick else 1_000_000
     reps = 1 if quick else repeats
-    total = reps * (len(sizes) + 2 + 3)
+    total = reps * (len(sizes) + 2 + 2 + 3 + 3)
     done = 0
 
     def step(what: str) -> None:
@@ -217,6 +234,24 @@ def bench(
         for _ in range(reps):
             step(f"rounds rate, ring of {n}, {rounds} rounds")
             rates_all[n].append(rounds_rate(n, rounds))
+    from coordinator._bare_ring import bare_ring_rate
+
+    bare_all: dict[int, list[float]] = {n: [] for n in (8, 32)}
+    for n in (8, 32):
+        for _ in range(reps):
+            step(f"bare pyzmq ring of {n}, {rounds} rounds")
+            bare_all[n].append(bare_ring_rate(n, rounds))
+    batch_rounds = 300 if quick else 2000
+    batch_cases = {
+        "ring-32": (32, 1, "ring"),
+        "ring-32-x16-seeds": (32, 16, "ring"),
+        "random-geometric-1024": (256 if quick else 1024, 1, "random-geometric"),
+    }
+    batch_all: dict[str, list[float]] = {name: [] for name in batch_cases}
+    for name, (n, seeds, shape) in batch_cases.items():
+        for _ in range(reps):
+            step(f"batch engine, {name}, {batch_rounds} rounds")
+            batch_all[name].append(batch_rate(n, batch_rounds, seeds, shape))
     loss = {
         "index": 0,
         "kind": "loss",
@@ -241,10 +276,18 @@ def bench(
         progress(total, total, "done")
     assert node is not None and faulty is not None
     raw_m, node_m, fault_m = _median(raw_all), _median(node_all), _median(fault_all)
+    process_32 = _median(rates_all[32])
+    bare = {n: _median(v) for n, v in bare_all.items()}
+    batch = {name: _median(v) for name, v in batch_all.items()}
     return {
+        "batch_iterations_per_s": batch,
+        "batch_rounds": batch_rounds,
+        "batch_ratio_to_processes_32": {name: r / process_32 for name, r in batch.items()},
         "spawn_s": {n: _median(v) for n, v in spawn_all.items()},
         "rounds_iterations_per_s": {n: _median(v) for n, v in rates_all.items()},
         "rounds_iterations": rounds,
+        "bare_ring_iterations_per_s": bare,
+        "rounds_ratio_to_bare_ring": {n: _median(rates_all[n]) / bare[n] for n in bare},
         "message_path_msgs_per_s": node_m,
         "raw_zmq_msgs_per_s": raw_m,
         "message_path_ratio": node_m / raw_m,
@@ -257,6 +300,8 @@ def bench(
         },
         "samples": {
             "spawn_s": spawn_all,
+            "batch_iterations_per_s": batch_all,
+            "bare_ring_iterations_per_s": bare_all,
             "rounds_iterations_per_s": rates_all,
             "raw_zmq_msgs_per_s": raw_all,
             "message_path_msgs_per_s": node_all,
@@ -280,6 +325,17 @@ def print_bench(res: dict[str, Any]) -> None:
         t.add_row(
             f"rounds mode, ring of {n} ({res['rounds_iterations']} rounds)",
             f"{r:,.0f} swarm iterations/s",
+        )
+    for n, r in res["bare_ring_iterations_per_s"].items():
+        t.add_row(
+            f"bare pyzmq ring of {n} (no swarmrig code)",
+            f"{r:,.0f} swarm iterations/s (rounds mode at {res['rounds_ratio_to_bare_ring'][n]:.2f})",
+        )
+    for name, r in res["batch_iterations_per_s"].items():
+        ratio = res["batch_ratio_to_processes_32"][name]
+        t.add_row(
+            f"batch engine, DGD, {name} ({res['batch_rounds']} rounds)",
+            f"{r:,.0f} swarm iterations/s ({ratio:,.0f}x processes at 32)",
         )
     t.add_row("raw pyzmq, one way", f"{res['raw_zmq_msgs_per_s']:,.0f} msg/s")
     t.add_row("node message path, one way", f"{res['message_path_msgs_per_s']:,.0f} msg/s")
