@@ -20,6 +20,8 @@ from typing import Any
 import numpy as np
 import zmq
 
+from coordinator._bare_ring import bare_ring_rate
+
 __all__ = ["batch_rate", "bench", "message_path", "print_bench", "rounds_rate", "spawn_time"]
 
 
@@ -234,8 +236,6 @@ def bench(
         for _ in range(reps):
             step(f"rounds rate, ring of {n}, {rounds} rounds")
             rates_all[n].append(rounds_rate(n, rounds))
-    from coordinator._bare_ring import bare_ring_rate
-
     bare_all: dict[int, list[float]] = {n: [] for n in (8, 32)}
     for n in (8, 32):
         for _ in range(reps):

@@ -104,6 +104,10 @@ def test_bench_reports_progress_before_every_measurement(
     measured: list[str] = []
     monkeypatch.setattr(_bench, "spawn_time", lambda n: measured.append("spawn") or 1.0)
     monkeypatch.setattr(_bench, "rounds_rate", lambda n, k: measured.append("rounds") or 1.0)
+    monkeypatch.setattr(_bench, "bare_ring_rate", lambda n, k: measured.append("bare") or 1.0)
+    monkeypatch.setattr(
+        _bench, "batch_rate", lambda n, k, seeds, shape: measured.append("batch") or 1.0
+    )
     monkeypatch.setattr(
         _bench,
         "message_path",
@@ -114,7 +118,7 @@ def test_bench_reports_progress_before_every_measurement(
         quick=False, repeats=2, progress=lambda d, t, w: reports.append((d, t, w, len(measured)))
     )
     total = len(measured)
-    assert total == 2 * (3 + 2 + 3)
+    assert total == 2 * (3 + 2 + 2 + 3 + 3)
     assert [r[0] for r in reports] == list(range(total + 1))
     assert {r[1] for r in reports} == {total}
     # each report comes before its measurement: nothing measured yet at report k but k
