@@ -17,6 +17,7 @@ from coordinator._scenario import (  # noqa: E402
     load_scenario,
 )
 from coordinator._scopes import links_in_scope  # noqa: E402
+from coordinator._study import StudyFrames, StudyOptions, load_study, run_study  # noqa: E402
 from coordinator._swarm import Swarm, build_swarm  # noqa: E402
 
 __all__ = [
@@ -25,6 +26,8 @@ __all__ = [
     "RunOptions",
     "RunResult",
     "Scenario",
+    "StudyFrames",
+    "StudyOptions",
     "Swarm",
     "build_swarm",
     "check",
@@ -34,9 +37,11 @@ __all__ = [
     "links_in_scope",
     "load",
     "load_scenario",
+    "load_study",
     "read_trajectories",
     "reference_optimum",
     "run",
     "run_batch",
+    "run_study",
     "total_objective",
 ]

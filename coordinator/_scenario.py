@@ -184,6 +184,7 @@ _FAULT_KEYS = tuple(
             *_WINDOW_IT,
             *(k for params in _FAULT_PARAMS.values() for k in params),
             *(k for params in DELAY_DISTRIBUTIONS.values() for k in params),
+            "name",
         ]
     )
 )
@@ -202,6 +203,7 @@ _SCOPE_KEYSETS = (
 # The name becomes part of a directory name: no separators, no spaces.
 _NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
 _NAME_EXPECTED = 'a name of up to 64 letters, digits, ".", "_" or "-" (it names the run directory)'
+_FAULT_NAME_EXPECTED = 'a name of up to 64 letters, digits, ".", "_" or "-"'
 _REQUIRED: Any = object()
 #: TOML integers are signed 64-bit
 _INT64_MAX = 2**63 - 1
@@ -850,10 +852,21 @@ def _agents(raw: Any, src: str, n: int, d: int, kind: str) -> dict[int, dict[str
 
 
 def _faults(raw: Any, src: str, n: int) -> tuple[dict[str, Any], ...]:
-    return tuple(
+    faults = tuple(
         _fault(_Table(entry, f"[[fault]] #{index}", src, sep=": "), index, n)
         for index, entry in enumerate(_array_of_tables(raw, "fault", src))
     )
+    seen: dict[str, int] = {}
+    for f in faults:
+        name = f.get("name")
+        if name is not None and name in seen:
+            raise ScenarioError(
+                f"{src}: [[fault]] #{f['index']}: name: {name!r} is already the name of"
+                f" [[fault]] #{seen[name]}; expected a name of its own"
+            )
+        if name is not None:
+            seen[name] = f["index"]
+    return faults
 
 
 def _fault(t: _Table, index: int, n: int) -> dict[str, Any]:
@@ -870,11 +883,13 @@ def _fault(t: _Table, index: int, n: int) -> dict[str, Any]:
         )
         params = params + DELAY_DISTRIBUTIONS[distribution]
     window = ("start_s", "start_iteration") if kind == "crash" else _WINDOW_S + _WINDOW_IT
-    used = ("kind", "links" if link else "agents", *window, *params)
+    used = ("kind", "links" if link else "agents", *window, *params, "name")
     by = f'kind "{kind}"' if distribution is None else f'delay distribution "{distribution}"'
     t.check_keys(_FAULT_KEYS, used=used, by=by)
 
     out: dict[str, Any] = {"index": index, "kind": kind}
+    if "name" in t.data:  # lets a study address this fault: "fault.<name>.<key>"
+        out["name"] = t.string("name", _NAME_RE, _FAULT_NAME_EXPECTED)
     if link:
         out["scope"] = _scope(t, n)
     else:
@@ -1567,6 +1582,11 @@ def describe_keys() -> list[tuple[str, str, str]]:
             f" period_ms * speed * (1 + jitter) at most {lim.POLL_MS_MAX}",
         ),
         ("[[fault]].kind", "required", kinds),
+        (
+            "[[fault]].name",
+            "none",
+            "optional name, unique in the scenario; a study addresses the fault by it",
+        ),
         ("[[fault]].links", "required by link faults", f"which directed links: {_SCOPE_FORMS}"),
         ("[[fault]].agents", "required by crash, pause, slow", "list of agent ids"),
         ("[[fault]].start_s", _lit(D["fault"]["start_s"]), "when it starts, seconds, >= 0"),

@@ -189,6 +189,9 @@ def _parser() -> argparse.ArgumentParser:
     _add_check(sub)
     _add_node(sub)
     _add_bench(sub)
+    from coordinator._study_cli import add_study_parsers
+
+    add_study_parsers(sub)
     return p
 
 
@@ -419,10 +422,18 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 _COMMANDS = {"run": _cmd_run, "check": _cmd_check, "node": _cmd_node, "bench": _cmd_bench}
 
 
+def _command(name: str) -> Any:
+    if name in ("study", "report"):
+        from coordinator import _study_cli
+
+        return _study_cli.cmd_study if name == "study" else _study_cli.cmd_report
+    return _COMMANDS[name]
+
+
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     try:
-        code = _COMMANDS[args.command](args)
+        code = _command(args.command)(args)
         sys.stdout.flush()
     except BrokenPipeError:
         # The reader went away (`swarmrig check x | head`): no traceback, and nothing more

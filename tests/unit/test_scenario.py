@@ -211,6 +211,7 @@ def test_full_scenario_values_and_defaults() -> None:
     assert loss == {
         "index": 0,
         "kind": "loss",
+        "name": "background-loss",
         "scope": "all",
         "start_s": 1.0,
         "duration_s": 2.0,
@@ -867,7 +868,7 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
         doc(fault=[{"kind": "slow", "links": "all", "factor": 2.0}]),
         exact(
             'dock.toml: [[fault]] #0: links: not used by kind "slow"; it takes: kind, agents, start_s,'
-            " duration_s, start_iteration, duration_iterations, factor"
+            " duration_s, start_iteration, duration_iterations, factor, name"
         ),
     ),
     (
@@ -915,7 +916,7 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
         doc(fault=[{"kind": "crash", "agents": [2], "duration_s": 1.0}]),
         exact(
             'dock.toml: [[fault]] #0: duration_s: not used by kind "crash"; it takes: kind, agents,'
-            " start_s, start_iteration, restart_after_s, restart_state"
+            " start_s, start_iteration, restart_after_s, restart_state, name"
         ),
     ),
     (
@@ -924,7 +925,7 @@ MALFORMED: list[tuple[str, dict[str, Any], str]] = [
         exact(
             'dock.toml: [[fault]] #0: ms: not used by delay distribution "uniform"; it takes: kind,'
             " links, start_s, duration_s, start_iteration, duration_iterations, distribution,"
-            " jitter_ms, fifo, low_ms, high_ms"
+            " jitter_ms, fifo, low_ms, high_ms, name"
         ),
     ),
     (
