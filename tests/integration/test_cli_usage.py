@@ -143,7 +143,9 @@ host = "127.0.0.1"
     assert coord.stderr.readline() == f"joined 0 of {n}\n"
     for i in range(n):
         p = subprocess.Popen(
-            [*CLI, "node", "--join", endpoint, "--agent", str(i)],
+            # agents join one by one here; until go the coordinator may stay silent for longer
+            # than the default 3 s on a loaded machine
+            [*CLI, "node", "--join", endpoint, "--agent", str(i), "--heartbeat-timeout", "120"],
             start_new_session=True,
             stdout=subprocess.DEVNULL,
             stderr=subprocess.DEVNULL,
