@@ -47,9 +47,19 @@ class ForkServer:
     def fileno(self) -> int:
         return self._out
 
-    def spawn(self, agent: int, join: str, log: str, heartbeat: float) -> None:
+    def spawn(
+        self, agent: int, join: str, log: str, heartbeat: float, keys: str | None = None
+    ) -> None:
+        """Fork one agent; ``keys``: the key directory it reads its secret key from."""
         self._send(
-            {"op": "spawn", "agent": agent, "join": join, "log": log, "heartbeat": heartbeat}
+            {
+                "op": "spawn",
+                "agent": agent,
+                "join": join,
+                "log": log,
+                "heartbeat": heartbeat,
+                "keys": keys,
+            }
         )
 
     def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> None:

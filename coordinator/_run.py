@@ -38,13 +38,26 @@ from coordinator._snapshot import take_snapshot
 from coordinator._swarm import Swarm, with_transport
 from coordinator._window_events import WindowEvents
 from node._errors import WireError
-from node._wire import MAX_CONTROL_FRAME, decode_control, encode_control
+from node._security import (
+    CONTROL_DOMAIN,
+    Gatekeeper,
+    curve_server,
+    fingerprint,
+    load_agent_keys,
+    load_coordinator_keys,
+    plan_keys,
+)
+from node._wire import MAX_CONTROL_FRAME, PROTOCOL, decode_control, encode_control
 from topologies._errors import SwarmrigError
 
 __all__ = ["RunFailed", "RunOptions", "RunResult", "execute"]
 
 VERSION = "0.1.0"
 HEARTBEAT_S = 0.5
+#: clock pings per agent incarnation during the handshake (the least round trip wins)
+PINGS = 20
+#: refused peers written to events.jsonl one by one; beyond this they are only counted
+REFUSAL_EVENTS = 1000
 
 
 def run_versions() -> dict[str, str]:
@@ -88,6 +101,8 @@ class RunOptions:
     engine: str = "processes"
     #: a coordinator._inventory.Inventory: start the agents on its hosts over ssh
     inventory: Any = None
+    #: key directory (swarmrig keys make): CURVE + allow-lists on every channel
+    keys: Path | None = None
 
 
 @dataclass(slots=True)
@@ -174,6 +189,17 @@ class Coordinator:
         self.window_events = WindowEvents(self.s.faults, self.n)
         self.run_json: dict[str, Any] = {}
         self.ipc_dir: str | None = None
+        # Keys are checked before anything starts (a loose secret key is refused here).
+        self.keys = None if options.keys is None else load_coordinator_keys(options.keys, self.n)
+        if self.keys is not None and options.launch_local:
+            for i in range(self.n):  # the agents forked here read these files
+                load_agent_keys(self.keys.directory, i)
+        self.gate: Gatekeeper | None = None
+        #: peers refused: hellos refused here, and as last reported by each agent's gatekeeper
+        self.refused_hellos = 0
+        self.refused_by_agent: dict[int, int] = {}
+        self._gate_seen = 0
+        self.refusals_logged = 0
 
     # -- helpers -----------------------------------------------------------------------
     def now_s(self) -> float:
@@ -193,7 +219,16 @@ class Coordinator:
     def write_run_json(self, **updates: Any) -> None:
         self.run_json.update(updates)
         self.run_json["agents"] = [
-            {"id": a.id, "epoch": a.epoch, "pid": a.pid, "host": a.host, "endpoint": a.endpoint}
+            {
+                "id": a.id,
+                "epoch": a.epoch,
+                "pid": a.pid,
+                "host": a.host,
+                "endpoint": a.endpoint,
+                # agent clock minus coordinator clock, and the round trip it was taken from
+                "clock_offset_s": a.offset if a.rtt_best < float("inf") else None,
+                "clock_rtt_s": a.rtt_best if a.rtt_best < float("inf") else None,
+            }
             for a in self.agents
         ]
         self.dir.write_json("run.json", self.run_json)
@@ -209,6 +244,12 @@ class Coordinator:
         self.router.setsockopt(zmq.MAXMSGSIZE, 4 * MAX_CONTROL_FRAME)
         self.router.setsockopt(zmq.SNDHWM, 100000)
         self.router.setsockopt(zmq.RCVHWM, 0)
+        if self.keys is not None:
+            allow = self.keys.allow
+            self.gate = Gatekeeper(self.ctx)
+            self.gate.allow(CONTROL_DOMAIN, {allow.keys[n]: n for n in set(allow.agents.values())})
+            curve_server(self.router, self.keys.public, self.keys.secret, CONTROL_DOMAIN)
+            self.gate.watch(self.router, "control", CONTROL_DOMAIN)
         inventory = self.opt.inventory
         listen = self.opt.listen or (inventory.listen if inventory else "tcp://127.0.0.1:*")
         self.router.bind(listen)
@@ -228,6 +269,12 @@ class Coordinator:
             stopped_utc=None,
             exit="starting",
             process_group=None,
+            security={
+                "curve": self.keys is not None,
+                "keys": None if self.keys is None else str(self.keys.directory),
+                "coordinator_key": None if self.keys is None else fingerprint(self.keys.public),
+                "protocol": PROTOCOL,
+            },
         )
         if (
             self.opt.launch_local
@@ -259,7 +306,8 @@ class Coordinator:
     def spawn(self, a: _Agent) -> None:
         assert self.fork is not None
         log = self.dir.path / "telemetry" / f"agent-{a.id}.log"
-        self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout)
+        keys = None if self.keys is None else str(self.keys.directory)
+        self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout, keys=keys)
 
     def on_fork_events(self) -> None:
         if self.fork is None:
@@ -286,7 +334,8 @@ class Coordinator:
                 self.event("agent-lost", agent=a.id, epoch=a.epoch, pid=a.pid, status=status)
                 self.unexpected.append(msg)
 
-    def on_message(self, ident: bytes, frame: bytes) -> None:
+    def on_message(self, ident: bytes, frame: bytes, user: str | None = None) -> None:
+        """One control frame; ``user``: the name of the key the sender authenticated with."""
         try:
             msg = decode_control(frame)
         except WireError as exc:
@@ -294,7 +343,7 @@ class Coordinator:
             return
         kind = msg["t"]
         if kind == "hello":
-            self.on_hello(ident, msg)
+            self.on_hello(ident, msg, user)
             return
         idx = self.by_ident.get(ident)
         if idx is None:
@@ -310,7 +359,7 @@ class Coordinator:
                 a.rtt_best = rtt
                 a.offset = float(msg["t_node"]) - (float(msg["t_coord"]) + rtt / 2)
                 a.record.offset = a.offset
-            if len(a.pings) < 5:
+            if len(a.pings) < PINGS:
                 self.ping(a)
         elif kind == "ready":
             a.ready = True
@@ -337,6 +386,9 @@ class Coordinator:
                     agent=a.id,
                     t_node_s=float(msg["t_node"]) - a.offset - self.agent_time_origin(a),
                 )
+        elif kind == "refused":
+            self.on_refusals(f"agent {a.id}", msg["records"])
+            self.refused_by_agent[a.id] = max(self.refused_by_agent.get(a.id, 0), msg["total"])
         elif kind == "failed":
             err = str(msg["error"])
             self.failures.append(err)
@@ -346,14 +398,59 @@ class Coordinator:
 
     def refuse(self, ident: bytes, reason: str, **fields: Any) -> None:
         """Tell a would-be agent no, and record it; a peer already gone is no error."""
+        self.refused_hellos += 1
         self.event("hello-refused", reason=reason, **fields)
         with contextlib.suppress(zmq.ZMQError):
             self.router.send_multipart(  # type: ignore[union-attr]
                 [ident, encode_control("refuse", reason=reason)], zmq.NOBLOCK
             )
 
-    def on_hello(self, ident: bytes, msg: dict[str, Any]) -> None:
+    def on_refusals(self, by: str, records: list[Any]) -> None:
+        """Refused peers into events.jsonl, one line each up to REFUSAL_EVENTS."""
+        for r in records[:64]:
+            if self.refusals_logged >= REFUSAL_EVENTS:
+                return
+            if not isinstance(r, dict):
+                continue
+            self.refusals_logged += 1
+            self.event(
+                "peer-refused",
+                by=by,
+                socket=str(r.get("socket", "?"))[:32],
+                address=str(r.get("address", "?"))[:64],
+                reason=str(r.get("reason", "?"))[:200],
+            )
+
+    def take_refusals(self) -> None:
+        if self.gate is not None and self.gate.total != self._gate_seen:
+            self._gate_seen = self.gate.total
+            self.on_refusals("coordinator", self.gate.take())
+
+    @property
+    def refused_total(self) -> int:
+        """Every peer refused: handshakes here and at the agents, and refused hellos."""
+        here = 0 if self.gate is None else self.gate.total
+        return here + self.refused_hellos + sum(self.refused_by_agent.values())
+
+    def hello_refusal(self, i: int, msg: dict[str, Any], user: str | None) -> str | None:
+        """Why this hello may not join (versions, key), or None."""
+        if msg["version"] != VERSION or msg["protocol"] != PROTOCOL:
+            return (
+                f"agent {i} runs swarmrig {msg['version']} (protocol {msg['protocol']}); "
+                f"this coordinator runs swarmrig {VERSION} (protocol {PROTOCOL})"
+            )
+        if self.keys is not None:
+            expected = self.keys.allow.agents.get(i)
+            if user != expected:  # an authenticated peer trying another agent's id
+                return f"agent {i} must present key {expected!r}; this hello came with {user!r}"
+        return None
+
+    def on_hello(self, ident: bytes, msg: dict[str, Any], user: str | None = None) -> None:
         i = int(msg["agent"])
+        why = self.hello_refusal(i, msg, user)
+        if why is not None:
+            self.refuse(ident, why, agent=i, host=msg["host"], pid=msg["pid"])
+            return
         if not 0 <= i < self.n:
             self.refuse(
                 ident,
@@ -392,6 +489,12 @@ class Coordinator:
         a.records.append(AgentRecord(agent=i, epoch=a.epoch))
         a.start_iteration = start_iteration
         plan = self.swarm.plan(i, a.epoch, start_state=start_state, start_iteration=start_iteration)
+        if self.keys is not None:
+            top = self.swarm.topology
+            plan = {
+                **plan,
+                "curve": plan_keys(self.keys.allow, i, top.out_neighbours(i), top.in_neighbours(i)),
+            }
         self.send(a, "plan", plan=plan)
         self.ping(a)
 
@@ -430,14 +533,21 @@ class Coordinator:
         assert self.router is not None
         if self.router.poll(timeout_ms):
             while True:
+                user = None
                 try:
-                    ident, frame = self.router.recv_multipart(zmq.NOBLOCK)
+                    if self.keys is None:
+                        ident, frame = self.router.recv_multipart(zmq.NOBLOCK)
+                    else:  # the key the sender authenticated with rides on the frame
+                        ident_f, frame_f = self.router.recv_multipart(zmq.NOBLOCK, copy=False)
+                        ident, frame = ident_f.bytes, frame_f.bytes
+                        user = frame_f.get("User-Id")
                 except zmq.Again:
                     break
                 except ValueError:  # not a two-frame message: not from one of our agents
                     self.event("envelope-rejected", error="message is not [identity, frame]")
                     continue
-                self.on_message(ident, frame)
+                self.on_message(ident, frame, user)
+        self.take_refusals()
         self.on_fork_events()
 
     def handshake(self) -> None:
@@ -831,6 +941,7 @@ class Coordinator:
             "reference_tolerance": ref.tolerance,
             **figures,
             "messages": totals.as_dict(),
+            "refused_peers": self.refused_total,
             "exit": self.exit_reason,
             "run_dir": str(self.dir.path),
         }
@@ -931,6 +1042,9 @@ class Coordinator:
             self.fork.shutdown()
         if self.router is not None:
             self.router.close(linger=0)
+        if self.gate is not None:
+            self.take_refusals()
+            self.gate.stop()
         if self.ctx is not None:
             self.ctx.term()
         if self.ipc_dir is not None:

@@ -135,6 +135,12 @@ def _add_run(sub: Any) -> None:
         help="seconds to wait until every agent has joined and is ready"
         " (default 20 + 0.1 per agent)",
     )
+    r.add_argument(
+        "--keys",
+        type=Path,
+        metavar="DIR",
+        help="key directory (swarmrig keys make): encrypt and authenticate every channel",
+    )
     _heartbeat_option(r)
 
 
@@ -165,6 +171,34 @@ def _add_node(sub: Any) -> None:
         help="which agent of the scenario this process is (0 to agents - 1)",
     )
     _heartbeat_option(n)
+    n.add_argument(
+        "--keys",
+        type=Path,
+        metavar="DIR",
+        help="key directory with allow.toml and this agent's secret key",
+    )
+
+
+def _add_keys(sub: Any) -> None:
+    k = sub.add_parser("keys", help="make the key material of a swarm")
+    ksub = k.add_subparsers(dest="keys_command", required=True)
+    km = ksub.add_parser(
+        "make",
+        help="coordinator key pair, one key pair per agent or per host, allow.toml",
+    )
+    km.add_argument("dir", type=Path, help="new (or empty) directory for the key files")
+    km.add_argument("--agents", type=int, metavar="N", help="one key pair per agent 0..N-1")
+    km.add_argument(
+        "--host",
+        action="append",
+        default=[],
+        metavar="NAME=IDS",
+        help="one key pair for a host running these agents, e.g. rover-a=0,1,2 (repeatable)",
+    )
+    kp = ksub.add_parser("pack", help="copy what one host needs into a directory of its own")
+    kp.add_argument("dir", type=Path, help="the swarm's key directory")
+    kp.add_argument("out", type=Path, help="directory to fill (for that host)")
+    kp.add_argument("--agents", required=True, metavar="IDS", help="the host's agents: 0,1,2")
 
 
 def _add_bench(sub: Any) -> None:
@@ -189,6 +223,7 @@ def _parser() -> argparse.ArgumentParser:
     _add_check(sub)
     _add_node(sub)
     _add_bench(sub)
+    _add_keys(sub)
     from coordinator._study_cli import add_study_parsers
 
     add_study_parsers(sub)
@@ -277,9 +312,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
         for name, text in list_demos():
             print(f"{name:20s} {text}")
         return 0
-    if args.engine in ("lockstep", "batch") and (args.listen or args.no_launch):
+    if args.engine in ("lockstep", "batch") and (args.listen or args.no_launch or args.keys):
         _err(
-            f"--engine {args.engine} runs every agent in this process: no --listen, no --no-launch"
+            f"--engine {args.engine} runs every agent in this process: "
+            "no --listen, no --no-launch, no --keys"
         )
         return EXIT_SCENARIO
     if args.no_launch and not args.listen:
@@ -291,6 +327,15 @@ def _cmd_run(args: argparse.Namespace) -> int:
     # checked before the run directory is written: ZeroMQ would only say "Invalid argument"
     if args.listen and not _endpoint(args.listen, "--listen", bind=True):
         return EXIT_SCENARIO
+    from node._security import is_loopback
+
+    if args.listen and not args.keys and not is_loopback(args.listen):
+        print(
+            f"swarmrig: warning: --listen {args.listen} without --keys: anyone who can reach "
+            "this port can join as an agent, feed states into the run and read its plan. "
+            "Make keys with `swarmrig keys make DIR --agents N` and pass --keys DIR.",
+            file=sys.stderr,
+        )
     target = args.scenario or DEFAULT_DEMO
     swarm = _load_or_explain(target, load)
     if swarm is None:
@@ -333,7 +378,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
             inventory=inventory,
             handshake_timeout=args.join_timeout,
             on_join=_JoinProgress() if args.no_launch else None,
+            keys=args.keys,
         )
+    except ScenarioError as exc:  # key material refused before anything started
+        if view is not None:
+            view.close()
+            view = None
+        _err(str(exc))
+        return EXIT_SCENARIO
     finally:
         if view is not None:
             view.close()
@@ -400,9 +452,43 @@ def _cmd_node(args: argparse.Namespace) -> int:
         return EXIT_SCENARIO
     from node._runtime import _set_parent_death_signal
     from node._runtime import main as node_main
+    from node._security import is_loopback
 
     _set_parent_death_signal()
-    return node_main(args.join, args.agent, args.heartbeat_timeout)
+    if args.keys is None and not is_loopback(args.join):
+        print(
+            f"swarmrig: warning: joining {args.join} without --keys: the control and data "
+            "channels are plain and open to anyone on the network",
+            file=sys.stderr,
+        )
+    return node_main(args.join, args.agent, args.heartbeat_timeout, keys=args.keys)
+
+
+def _cmd_keys(args: argparse.Namespace) -> int:
+    from coordinator._keys import make_keys, pack_keys
+    from topologies._errors import ScenarioError
+
+    try:
+        if args.keys_command == "make":
+            d = make_keys(args.dir, agents=args.agents, hosts=args.host)
+            names = sorted(p.name for p in d.iterdir())
+            print(f"wrote {len(names)} files to {d}: " + ", ".join(names))
+            print(
+                f"keep {d}/coordinator.key_secret on the coordinator's machine; give each "
+                f"host allow.toml and its own *.key_secret (swarmrig keys pack {d} OUT --agents "
+                "IDS)"
+            )
+        else:
+            ids = [int(x) for x in args.agents.split(",") if x.strip()]
+            files = pack_keys(args.dir, args.out, ids)
+            print(f"wrote {', '.join(str(f) for f in files)}")
+    except ValueError:
+        _err(f"--agents {args.agents!r}: expected agent ids separated by commas, e.g. 0,1,2")
+        return EXIT_SCENARIO
+    except ScenarioError as exc:
+        _err(str(exc))
+        return EXIT_SCENARIO
+    return 0
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
@@ -419,7 +505,13 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     return 0
 
 
-_COMMANDS = {"run": _cmd_run, "check": _cmd_check, "node": _cmd_node, "bench": _cmd_bench}
+_COMMANDS = {
+    "run": _cmd_run,
+    "check": _cmd_check,
+    "node": _cmd_node,
+    "bench": _cmd_bench,
+    "keys": _cmd_keys,
+}
 
 
 def _command(name: str) -> Any:

@@ -66,7 +66,12 @@ def _child(req: dict, logfd: int) -> None:
         sys.stderr = os.fdopen(2, "w", buffering=1)
         signal.signal(signal.SIGCHLD, signal.SIG_DFL)
         runtime._set_parent_death_signal()
-        code = runtime.main(req["join"], int(req["agent"]), float(req.get("heartbeat", 3.0)))
+        code = runtime.main(
+            req["join"],
+            int(req["agent"]),
+            float(req.get("heartbeat", 3.0)),
+            keys=req.get("keys"),
+        )
     except SystemExit as exc:
         code = exc.code if isinstance(exc.code, int) else 2
     except BaseException:

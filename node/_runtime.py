@@ -33,7 +33,23 @@ from node._lifecycle import Lifecycle, Phase
 from node._objectives import objective_from_spec
 from node._receiver import Receiver
 from node._rng import agent_generator
-from node._wire import MAX_DATA_FRAME, PROBE, decode_control, encode_control, encode_probe
+from node._security import (
+    DATA_DOMAIN,
+    AgentKeys,
+    Gatekeeper,
+    curve_client,
+    curve_server,
+    data_plane_keys,
+    load_agent_keys,
+)
+from node._wire import (
+    MAX_DATA_FRAME,
+    PROBE,
+    PROTOCOL,
+    decode_control,
+    encode_control,
+    encode_probe,
+)
 
 __all__ = ["BATCH_LIMIT", "Node", "main", "receive_batch", "spec_from_plan"]
 
@@ -46,6 +62,8 @@ DIVERGED = 1e12
 
 #: frames taken off the data socket before they are handled as one batch
 BATCH_LIMIT = 4096
+#: test-only: "ID=SECONDS,..." shifts those agents' clocks (checks the offset estimate)
+CLOCK_SHIFT_ENV = "SWARMRIG_TEST_CLOCK_SHIFT"
 
 
 def receive_batch(sub: zmq.Socket, rx: Receiver, now: float, limit: int = BATCH_LIMIT) -> int:
@@ -136,12 +154,20 @@ class Node:
         *,
         heartbeat_timeout: float = 3.0,
         clock: Any = time.monotonic,
+        keys: AgentKeys | None = None,
     ) -> None:
         self.init_fields(join, agent, heartbeat_timeout, clock)
+        self.keys = keys
         self.ctx = zmq.Context()
+        self.gate = None if keys is None else Gatekeeper(self.ctx)
         self.ctl = self.ctx.socket(zmq.DEALER)
         self.ctl.setsockopt(zmq.LINGER, 0)
         self.ctl.setsockopt(zmq.SNDHWM, 100000)
+        if keys is not None:
+            assert self.gate is not None
+            # Only the holder of the coordinator's secret key can complete this handshake.
+            curve_client(self.ctl, keys.public, keys.secret, keys.coordinator)
+            self.gate.watch(self.ctl, "coordinator")
         self.ctl.connect(join)
 
     def init_fields(self, join: str, agent: int, heartbeat_timeout: float, clock: Any) -> None:
@@ -168,6 +194,9 @@ class Node:
         self.to_report: dict[int, int] = {}
         #: data frames that arrived before go, with their arrival times
         self.early: list[tuple[bytes, float]] = []
+        self.gate: Gatekeeper | None = None
+        #: in-neighbour -> its public key (keyed swarms; from the plan)
+        self.publisher_keys: dict[int, bytes] = {}
 
     # -- control channel ---------------------------------------------------------------
     def send_ctl(self, kind: str, **fields: Any) -> bool:
@@ -219,7 +248,15 @@ class Node:
             elif self.clock() - self.last_ctl > self.heartbeat_timeout:
                 raise AgentFailure(
                     f"agent {self.agent}: coordinator silent for {self.heartbeat_timeout:.1f} s"
+                    + ("" if self.gate is None else self.gate.trouble_with("coordinator"))
                 )
+            self.report_refusals()
+
+    def report_refusals(self) -> None:
+        """Tell the coordinator about peers our gatekeeper refused (a bounded few)."""
+        report = None if self.gate is None else self.gate.report(exclude="coordinator")
+        if report is not None and self.send_ctl("refused", **report):
+            self.gate.reported(report["total"])  # type: ignore[union-attr]
 
     def coordinator_lost(self) -> bool:
         return self.clock() - self.last_ctl > self.heartbeat_timeout
@@ -269,6 +306,13 @@ class Node:
         self.pub = self.ctx.socket(zmq.PUB)
         self.pub.setsockopt(zmq.LINGER, 0)
         self.pub.setsockopt(zmq.SNDHWM, int(plan.get("hwm", 100000)))
+        subscribers, self.publisher_keys = data_plane_keys(plan, self.keys, self.agent)
+        if self.keys is not None:
+            assert self.gate is not None
+            # Our data go only to our out-neighbours' keys; we read only our in-neighbours.
+            self.gate.allow(DATA_DOMAIN, subscribers)
+            curve_server(self.pub, self.keys.public, self.keys.secret, DATA_DOMAIN)
+            self.gate.watch(self.pub, "data", DATA_DOMAIN)
         if plan.get("transport") == "ipc":
             # Same machine: unix sockets skip the TCP stack (about 1.5x the rounds rate).
             self.endpoint = f"ipc://{plan['ipc_dir']}/a{self.agent}-e{self.epoch}"
@@ -286,6 +330,8 @@ class Node:
         self.sub.setsockopt(zmq.SUBSCRIBE, b"")
         if plan.get("transport") != "ipc":
             _detect_dead_links(self.pub, self.sub)
+        if self.keys is not None:
+            curve_client(self.sub, self.keys.public, self.keys.secret, self.keys.public)
         self._sub_poller = zmq.Poller()
         self._sub_poller.register(self.sub, zmq.POLLIN)
         self.connected: dict[int, str] = {}
@@ -316,6 +362,11 @@ class Node:
                 if old is not None:
                     with contextlib.suppress(zmq.ZMQError):
                         self.sub.disconnect(old)
+                if self.keys is not None:
+                    server = self.publisher_keys.get(j)
+                    if server is None:
+                        raise AgentFailure(f"agent {self.agent}: the plan has no key for {j}")
+                    self.sub.curve_serverkey = server  # read by this connect only
                 self.sub.connect(endpoint)
                 self.connected[j] = endpoint
 
@@ -368,6 +419,8 @@ class Node:
     def flush(self) -> None:
         if self.to_report:
             self.report_heard()
+        if self.gate is not None:
+            self.report_refusals()
         if not self.samples:
             return
         ok = self.send_ctl(
@@ -404,7 +457,12 @@ class Node:
 
     def handshake(self) -> None:
         self.send_ctl(
-            "hello", agent=self.agent, host=socket.gethostname(), pid=os.getpid(), version=VERSION
+            "hello",
+            agent=self.agent,
+            host=socket.gethostname(),
+            pid=os.getpid(),
+            version=VERSION,
+            protocol=PROTOCOL,
         )
         plan = self.wait_ctl("plan")["plan"]
         self.setup(plan)
@@ -445,6 +503,8 @@ class Node:
                         return
                     elif msg["t"] == "stop":
                         raise AgentFailure(f"agent {self.agent}: stopped before go")
+            if self.gate is not None:
+                self.report_refusals()
             if self.coordinator_lost():
                 raise AgentFailure(
                     f"agent {self.agent}: coordinator silent for "
@@ -694,6 +754,8 @@ class Node:
         for s in (self.pub, self.sub, self.ctl):
             if s is not None:
                 s.close(linger=0)
+        if self.gate is not None:
+            self.gate.stop()
         self.ctx.term()
 
 
@@ -702,8 +764,22 @@ class _Diverged(Exception):
         self.iteration = iteration
 
 
-def main(join: str, agent: int, heartbeat_timeout: float = 3.0) -> int:
-    """Entry point of one agent process (``swarmrig node``)."""
+def _shifted_clock(agent: int) -> Any:
+    """Test-only: this agent's clock moved by a known offset (see CLOCK_SHIFT_ENV)."""
+    spec = os.environ.get(CLOCK_SHIFT_ENV, "")
+    for part in spec.split(","):
+        key, sep, value = part.partition("=")
+        if sep and key.strip() == str(agent):
+            shift = float(value)
+            mono = time.monotonic
+            return lambda: mono() + shift
+    return time.monotonic
+
+
+def main(
+    join: str, agent: int, heartbeat_timeout: float = 3.0, keys: str | os.PathLike | None = None
+) -> int:
+    """Entry point of one agent process (``swarmrig node``); ``keys``: the key directory."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the coordinator decides when to stop
     stop = {"flag": False}
 
@@ -715,5 +791,20 @@ def main(join: str, agent: int, heartbeat_timeout: float = 3.0) -> int:
         raise SystemExit(143)
 
     signal.signal(signal.SIGTERM, _term)
-    node = Node(join, agent, heartbeat_timeout=heartbeat_timeout)
+    agent_keys = None
+    if keys is not None:
+        from node._security import KeyMaterialError
+
+        try:
+            agent_keys = load_agent_keys(keys, agent)
+        except KeyMaterialError as exc:
+            print(f"agent {agent}: {exc}", file=sys.stderr)
+            return 2
+    node = Node(
+        join,
+        agent,
+        heartbeat_timeout=heartbeat_timeout,
+        clock=_shifted_clock(agent),
+        keys=agent_keys,
+    )
     return node.run()

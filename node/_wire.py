@@ -33,6 +33,7 @@ __all__ = [
     "MAX_CONTROL_FRAME",
     "MAX_DATA_FRAME",
     "PROBE",
+    "PROTOCOL",
     "DataLayout",
     "DataMessage",
     "decode_control",
@@ -45,6 +46,9 @@ __all__ = [
 
 DATA = 0
 PROBE = 1
+#: version of the control protocol and the data frames; the hello carries it and the
+#: coordinator refuses an agent that speaks another one (naming both versions)
+PROTOCOL = 2
 #: a data frame carries a handful of small vectors; anything near this is an attack or a bug
 MAX_DATA_FRAME = 1 << 20
 #: control frames carry plans and telemetry batches
@@ -369,7 +373,7 @@ _NUM = (int, float)
 #: type -> required keys and their accepted Python types (extra keys are refused)
 CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
     # agent -> coordinator
-    "hello": {"agent": int, "host": str, "pid": int, "version": str},
+    "hello": {"agent": int, "host": str, "pid": int, "version": str, "protocol": int},
     "bound": {"endpoint": str},
     "ready": {},
     "pong": {"seq": int, "t_coord": _NUM, "t_node": _NUM},
@@ -378,6 +382,8 @@ CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
     "heard": {"sender": int, "epoch": int},
     "final": {"state": dict, "iteration": int, "links": dict, "counters": dict, "reason": str},
     "failed": {"error": str},
+    # peers this agent's gatekeeper refused: total so far, the latest few (bounded)
+    "refused": {"total": int, "records": list},
     # coordinator -> agent
     "plan": {"plan": dict},
     "peers": {"peers": dict},

@@ -30,6 +30,7 @@ from node._runtime import Node
 from node._wire import (
     MAX_CONTROL_FRAME,
     MAX_DATA_FRAME,
+    PROTOCOL,
     decode_control,
     encode_control,
     encode_data,
@@ -138,7 +139,7 @@ def assert_agents_unaffected(out: Path, n: int) -> None:
 
 # ----------------------------------------------------------------------- control plane
 
-HELLO = {"host": "intruder", "pid": 1, "version": "0.1.0"}
+HELLO = {"host": "intruder", "pid": 1, "version": "0.1.0", "protocol": PROTOCOL}
 
 
 def wire_junk() -> list[bytes]:
@@ -414,7 +415,9 @@ def test_control_junk_to_an_agent_is_refused_and_counted(
 ) -> None:
     n, _, router = node
     # Let our ROUTER learn the node's identity, as the coordinator does from its hello.
-    n.send_ctl("hello", agent=0, host="h", pid=os.getpid(), version="0.1.0")
+    n.send_ctl(
+        "hello", agent=0, host="h", pid=os.getpid(), version="0.1.0", protocol=PROTOCOL
+    )
     ident, hello = router.recv_multipart() if router.poll(RECV_TIMEOUT_MS) else (None, None)
     assert ident is not None, "no hello from the node"
     assert decode_control(hello)["agent"] == 0

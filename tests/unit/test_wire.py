@@ -397,7 +397,7 @@ def _same_outcome(layout: DataLayout, frame: bytes) -> None:
 
 #: one valid message per control type (the test below insists every type has one)
 CONTROL_SAMPLES: dict[str, dict[str, Any]] = {
-    "hello": {"agent": 3, "host": "buoy-3", "pid": 4242, "version": "0.1.0"},
+    "hello": {"agent": 3, "host": "buoy-3", "pid": 4242, "version": "0.1.0", "protocol": 2},
     "bound": {"endpoint": "tcp://127.0.0.1:5999"},
     "ready": {},
     "pong": {"seq": 2, "t_coord": 10.5, "t_node": 11},
@@ -416,6 +416,7 @@ CONTROL_SAMPLES: dict[str, dict[str, Any]] = {
         "reason": "budget",
     },
     "failed": {"error": "diverged"},
+    "refused": {"total": 1, "records": [{"socket": "data", "address": "10.0.0.9:4711"}]},
     "plan": {"plan": {"agent": 3, "epoch": 0, "in_neighbours": [2, 4]}},
     "peers": {"peers": {2: ["ipc:///tmp/a2-e0", 0], 4: ["tcp://10.0.0.5:7001", 1]}},
     "ping": {"seq": 0, "t_coord": 1.0},
