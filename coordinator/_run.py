@@ -41,6 +41,7 @@ from node._errors import WireError
 from node._security import (
     CONTROL_DOMAIN,
     Gatekeeper,
+    KeyMaterialError,
     curve_server,
     fingerprint,
     load_agent_keys,
@@ -183,17 +184,23 @@ class Coordinator:
         self.triggers: list[tuple[int, int, str, Callable[[], None]]] = []
         self.unexpected: list[str] = []
         self.pending_peer_updates: list[int] = []
+        if options.keys is not None and options.inventory is not None:
+            raise KeyMaterialError(
+                "--keys with --inventory: the launcher does not hand key directories to its"
+                " hosts yet; start the agents by hand with swarmrig node --keys DIR"
+            )
+        # Keys are checked before anything starts or is written (a loose secret key is refused
+        # here).
+        self.keys = None if options.keys is None else load_coordinator_keys(options.keys, self.n)
+        if self.keys is not None and options.launch_local:
+            for i in range(self.n):  # the agents forked here read these files
+                load_agent_keys(self.keys.directory, i)
         out = options.out or RunDir.default_path(self.s.name, options.runs_root)
         self.dir = RunDir(Path(out))
         self.view = options.view
         self.window_events = WindowEvents(self.s.faults, self.n)
         self.run_json: dict[str, Any] = {}
         self.ipc_dir: str | None = None
-        # Keys are checked before anything starts (a loose secret key is refused here).
-        self.keys = None if options.keys is None else load_coordinator_keys(options.keys, self.n)
-        if self.keys is not None and options.launch_local:
-            for i in range(self.n):  # the agents forked here read these files
-                load_agent_keys(self.keys.directory, i)
         self.gate: Gatekeeper | None = None
         #: peers refused: hellos refused here, and as last reported by each agent's gatekeeper
         self.refused_hellos = 0
@@ -306,8 +313,11 @@ class Coordinator:
     def spawn(self, a: _Agent) -> None:
         assert self.fork is not None
         log = self.dir.path / "telemetry" / f"agent-{a.id}.log"
-        keys = None if self.keys is None else str(self.keys.directory)
-        self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout, keys=keys)
+        if self.keys is None:
+            self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout)
+        else:
+            keys = str(self.keys.directory)
+            self.fork.spawn(a.id, self.endpoint, str(log), self.opt.heartbeat_timeout, keys=keys)
 
     def on_fork_events(self) -> None:
         if self.fork is None:
@@ -351,6 +361,7 @@ class Coordinator:
         a = self.agents[idx]
         if kind == "bound":
             a.endpoint = msg["endpoint"]
+            self.event("agent-bound", agent=a.id, epoch=a.epoch, endpoint=a.endpoint, host=a.host)
             if a.running or self.t_go is not None:
                 self.peers_for_restart(a)
         elif kind == "pong":

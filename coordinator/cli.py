@@ -136,6 +136,12 @@ def _add_run(sub: Any) -> None:
         " (default 20 + 0.1 per agent)",
     )
     r.add_argument(
+        "--join-timeout",
+        type=float,
+        metavar="S",
+        help="seconds to wait until every agent is ready (default 20 + 0.1 per agent)",
+    )
+    r.add_argument(
         "--keys",
         type=Path,
         metavar="DIR",
@@ -379,6 +385,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
             handshake_timeout=args.join_timeout,
             on_join=_JoinProgress() if args.no_launch else None,
             keys=args.keys,
+            handshake_timeout=args.join_timeout,
         )
     except ScenarioError as exc:  # key material refused before anything started
         if view is not None:

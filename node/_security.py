@@ -232,7 +232,7 @@ class CoordinatorKeys:
 
 
 def load_coordinator_keys(directory: Path | str, n_agents: int) -> CoordinatorKeys:
-    directory = Path(directory)
+    directory = Path(directory).resolve()
     allow = read_allow_list(directory)
     allow.check_agents(n_agents)
     path = directory / f"{COORDINATOR_KEY}.key_secret"
@@ -444,8 +444,8 @@ class Gatekeeper:
         poller.register(self._zap, zmq.POLLIN)
         monitors: dict[zmq.Socket, tuple[str, str]] = {}
         peers: dict[tuple[str, int], str] = {}
-        failed: dict[str, deque[str]] = {}
-        denied: dict[str, deque[str]] = {}
+        failed: dict[str, deque[tuple[str, str]]] = {}
+        denied: dict[str, deque[tuple[str, str]]] = {}
         pipe.send(b"up")
         try:
             while True:
@@ -472,7 +472,7 @@ class Gatekeeper:
             self._zap.close(linger=0)
             pipe.close(linger=0)
 
-    def _answer(self, msg: list[bytes], denied: dict[str, deque[str]]) -> None:
+    def _answer(self, msg: list[bytes], denied: dict[str, deque[tuple[str, str]]]) -> None:
         """One ZAP request (RFC 27): 200 with the key's name as User-Id, or 400."""
         if len(msg) < 6:
             if len(msg) >= 2:
@@ -496,7 +496,7 @@ class Gatekeeper:
             self._zap.send_multipart([b"1.0", request_id, b"200", b"OK", name.encode(), b""])
             return
         denied.setdefault(dom, deque(maxlen=64)).append(
-            f"{reason} (from {address.decode('utf-8', 'replace')})"
+            (reason, address.decode("utf-8", "replace"))
         )
         self._zap.send_multipart([b"1.0", request_id, b"400", reason.encode(), b"", b""])
 
@@ -505,8 +505,8 @@ class Gatekeeper:
         mon: zmq.Socket,
         watched: tuple[str, str],
         peers: dict[tuple[str, int], str],
-        failed: dict[str, deque[str]],
-        denied: dict[str, deque[str]],
+        failed: dict[str, deque[tuple[str, str]]],
+        denied: dict[str, deque[tuple[str, str]]],
     ) -> None:
         try:
             ev = parse_monitor_message(mon.recv_multipart())
@@ -517,10 +517,11 @@ class Gatekeeper:
         if kind in (zmq.EVENT_ACCEPTED, zmq.EVENT_CONNECTED):
             peers[(label, value)] = _peer_of(value)
         elif kind in _FAILED:
+            ip = ""  # ZAP knows the peer's IP: the fallback when the fd was read too late
             if kind == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
                 queue = denied.get(domain)
                 if queue:
-                    reason = queue.popleft()
+                    reason, ip = queue.popleft()
                 elif domain:
                     reason = f"ZAP status {value}"
                 else:
@@ -529,12 +530,13 @@ class Gatekeeper:
                 reason = _PROTOCOL_REASONS.get(value, f"protocol error {value:#x}")
             else:
                 reason = f"{os.strerror(value)}" if value > 0 else "no detail"
-            failed[label].append(f"{_FAILED[kind]}: {reason}")
+            failed[label].append((f"{_FAILED[kind]}: {reason}", ip))
         elif kind == zmq.EVENT_DISCONNECTED:
             address = peers.pop((label, value), "unknown")
             queue = failed.get(label)
             if queue:
-                self._record(label, address, queue.popleft())
+                reason, ip = queue.popleft()
+                self._record(label, ip if address == "unknown" and ip else address, reason)
 
     def _record(self, label: str, address: str, reason: str) -> None:
         with self._lock:
