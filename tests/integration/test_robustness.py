@@ -415,9 +415,7 @@ def test_control_junk_to_an_agent_is_refused_and_counted(
 ) -> None:
     n, _, router = node
     # Let our ROUTER learn the node's identity, as the coordinator does from its hello.
-    n.send_ctl(
-        "hello", agent=0, host="h", pid=os.getpid(), version="0.1.0", protocol=PROTOCOL
-    )
+    n.send_ctl("hello", agent=0, host="h", pid=os.getpid(), version="0.1.0", protocol=PROTOCOL)
     ident, hello = router.recv_multipart() if router.poll(RECV_TIMEOUT_MS) else (None, None)
     assert ident is not None, "no hello from the node"
     assert decode_control(hello)["agent"] == 0
