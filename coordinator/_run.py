@@ -565,12 +565,20 @@ class Coordinator:
         timeout = self.opt.handshake_timeout or (20.0 + 0.1 * self.n)
         deadline = self.clock() + timeout
         peers_sent = False
+        next_beat = self.clock()
         while True:
             self.pump(5)
             if self.opt.on_join is not None:
                 self.opt.on_join(
                     self.endpoint, sum(a.ident is not None for a in self.agents), self.n
                 )
+            if self.clock() >= next_beat:
+                # Agents that joined wait for the others (started by hand, maybe minutes
+                # apart): without beats they would take the coordinator for lost.
+                for a in self.agents:
+                    if a.ident is not None and not a.dead:
+                        self.send(a, "beat")
+                next_beat = self.clock() + HEARTBEAT_S
             self.check_stop_request(before_go=True)
             if self.unexpected:
                 raise _Stop(self.unexpected[0] + " during start-up", 3)

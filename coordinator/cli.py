@@ -385,7 +385,6 @@ def _cmd_run(args: argparse.Namespace) -> int:
             handshake_timeout=args.join_timeout,
             on_join=_JoinProgress() if args.no_launch else None,
             keys=args.keys,
-            handshake_timeout=args.join_timeout,
         )
     except ScenarioError as exc:  # key material refused before anything started
         if view is not None:
