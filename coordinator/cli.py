@@ -136,12 +136,6 @@ def _add_run(sub: Any) -> None:
         " (default 20 + 0.1 per agent)",
     )
     r.add_argument(
-        "--join-timeout",
-        type=float,
-        metavar="S",
-        help="seconds to wait until every agent is ready (default 20 + 0.1 per agent)",
-    )
-    r.add_argument(
         "--keys",
         type=Path,
         metavar="DIR",
@@ -187,7 +181,7 @@ def _add_node(sub: Any) -> None:
 
 def _add_keys(sub: Any) -> None:
     k = sub.add_parser("keys", help="make the key material of a swarm")
-    ksub = k.add_subparsers(dest="keys_command", required=True)
+    ksub = k.add_subparsers(dest="keys_command", required=True, help="make or pack")
     km = ksub.add_parser(
         "make",
         help="coordinator key pair, one key pair per agent or per host, allow.toml",
