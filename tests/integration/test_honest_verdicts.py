@@ -217,3 +217,36 @@ def test_live_view_at_the_end_of_a_crash_run_equals_the_files(processes, tmp_pat
     text = view.texts[-1]
     assert s["verdict"] in text and f"{s['worst_agent_gap']:.3e}" in text
     assert "faults active" not in text
+
+
+@pytest.mark.parametrize(
+    ("step", "status", "verdict"),
+    [(0.05, 4, "average within tolerance but agents disagree"), (3.0, 5, "diverged")],
+)
+def test_quiet_prints_one_line_and_strict_exit_tells_the_verdict(
+    processes, tmp_path, step, status, verdict
+):
+    scenario = tmp_path / "s.toml"
+    scenario.write_text(
+        '[swarm]\nagents = 6\nseed = 2\niterations = 400\n[topology]\nshape = "ring"\n'
+        f'[algorithm]\nname = "dgd"\nstep = {step}\n'
+    )
+    out = tmp_path / "run"
+    p = processes.start(
+        "run",
+        str(scenario),
+        "--engine",
+        "lockstep",
+        "--out",
+        str(out),
+        "--quiet",
+        "--strict-exit",
+    )
+    stdout, stderr = p.communicate(timeout=120)
+    assert p.returncode == status, stderr
+    lines = stdout.splitlines()
+    assert len(lines) == 1 and lines[0].startswith(verdict) and lines[0].endswith(str(out))
+    s = json.loads((out / "summary.json").read_text())
+    assert s["verdict"] == verdict
+    if s["worst_agent_gap"] is not None:
+        assert f"{s['worst_agent_gap']:.3g}" in lines[0]
