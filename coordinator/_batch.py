@@ -26,8 +26,6 @@ process's own; with several seeds ``run_s`` is the time of the joint loop.
 from __future__ import annotations
 
 import contextlib
-import getpass
-import os
 import signal
 import socket
 import tempfile
@@ -38,8 +36,9 @@ from pathlib import Path
 from typing import Any
 
 from coordinator._batch_engine import Engine
+from coordinator._lockstep import write_virtual_run_json
 from coordinator._metrics import AgentRecord
-from coordinator._run import Coordinator, RunFailed, RunOptions, RunResult, _Agent, run_versions
+from coordinator._run import Coordinator, RunFailed, RunOptions, RunResult, _Agent
 from coordinator._swarm import LINK_FAULTS, PROCESS_FAULTS, Swarm
 from node._algorithm import BlockAlgorithm, algorithm_class
 from node._links import LinkFault
@@ -118,22 +117,7 @@ class BatchCoordinator(Coordinator):
         )
 
     def launch(self) -> None:
-        self.write_run_json(
-            engine="batch",
-            clock="virtual: round k at k * period_ms, from 0",
-            versions=run_versions(),
-            coordinator={
-                "host": socket.gethostname(),
-                "pid": os.getpid(),
-                "user": getpass.getuser(),
-                "endpoint": None,
-            },
-            label=self.opt.label,
-            started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            stopped_utc=None,
-            exit="starting",
-            process_group=None,
-        )
+        write_virtual_run_json(self, "batch")
 
     def handshake(self) -> None:
         host = socket.gethostname()

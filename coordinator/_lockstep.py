@@ -104,6 +104,26 @@ def _round_limit(iterations: int | None, seconds: float | None, period_s: float)
     return min(limits)
 
 
+def write_virtual_run_json(coord: Coordinator, engine: str) -> None:
+    """The first run.json of an engine that runs the swarm in this process on virtual time."""
+    coord.write_run_json(
+        engine=engine,
+        clock="virtual: round k at k * period_ms, from 0",
+        versions=run_versions(),
+        coordinator={
+            "host": socket.gethostname(),
+            "pid": os.getpid(),
+            "user": getpass.getuser(),
+            "endpoint": None,
+        },
+        label=coord.opt.label,
+        started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        stopped_utc=None,
+        exit="starting",
+        process_group=None,
+    )
+
+
 class _Member(Node):
     """One agent of a lockstep run: the node core without sockets.
 
@@ -214,22 +234,7 @@ class LockstepCoordinator(Coordinator):
 
     # -- launch and handshake ----------------------------------------------------------
     def launch(self) -> None:
-        self.write_run_json(
-            engine="lockstep",
-            clock="virtual: round k at k * period_ms, from 0",
-            versions=run_versions(),
-            coordinator={
-                "host": socket.gethostname(),
-                "pid": os.getpid(),
-                "user": getpass.getuser(),
-                "endpoint": None,
-            },
-            label=self.opt.label,
-            started_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            stopped_utc=None,
-            exit="starting",
-            process_group=None,
-        )
+        write_virtual_run_json(self, "lockstep")
 
     def handshake(self) -> None:
         host = socket.gethostname()
