@@ -14,6 +14,11 @@ An inventory is a TOML file of our own (deploy/inventory.example.toml)::
     agents = [0, 1, 2]
     python = "/usr/bin/python3"             # or venv = "/home/lab/swarmrig/.venv"
     ssh_options = ["-p", "2222"]            # optional, passed to ssh before its defaults
+    keys = "/home/lab/rover-a-keys"         # with --keys: this host's packed key directory
+
+``keys`` is the directory on that machine holding what ``swarmrig keys pack`` wrote for its
+agents (allow.toml and their secret keys); a run with ``--keys`` needs it on every host, a
+run without refuses it (see :meth:`Inventory.check_keys`).
 
 Everything is checked before anything starts; each error names the file and the key.
 """
@@ -33,8 +38,8 @@ from topologies._errors import ScenarioError
 __all__ = ["Host", "Inventory", "InventoryError", "load_inventory"]
 
 _TOP_KEYS = ("coordinator", "listen", "defaults", "host")
-_HOST_KEYS = ("name", "ssh", "agents", "python", "venv", "ssh_options")
-_DEFAULT_KEYS = ("python", "venv", "ssh_options")
+_HOST_KEYS = ("name", "ssh", "agents", "python", "venv", "ssh_options", "keys")
+_DEFAULT_KEYS = ("python", "venv", "ssh_options", "keys")
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,62}")
 _TCP = re.compile(r"tcp://(?P<host>\[[0-9A-Fa-f:.]+\]|[^\s:/\[\]]+):(?P<port>[0-9]{1,5})")
 
@@ -57,6 +62,8 @@ class Host:
     python: str
     #: extra ssh arguments, placed before ours (ssh keeps the first value of an option)
     ssh_options: tuple[str, ...] = ()
+    #: key directory on that machine (swarmrig keys pack), absolute or ~/...; None: no keys
+    keys: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -104,6 +111,35 @@ class Inventory:
                 f'machines cannot be reached on a loopback address; set host = "0.0.0.0" '
                 f"(every interface) to run with the inventory {src}"
             )
+
+    def check_keys(self, allow: Any | None) -> None:
+        """Every host has a key directory when the run has keys, none when it has not.
+
+        ``allow``: the coordinator's node._security.AllowList, or None for a run without
+        keys. Raises InventoryError naming the file and the host.
+        """
+        src = self.path.name
+        for h in self.hosts:
+            if allow is None and h.keys is not None:
+                raise InventoryError(
+                    f"{src}: [[host]] name={h.name!r}: keys = {h.keys!r}, but this run has no "
+                    "--keys; give --keys DIR (the directory of `swarmrig keys make`) or remove "
+                    "keys from the inventory"
+                )
+            if allow is not None and h.keys is None:
+                ids = ",".join(str(i) for i in h.agents)
+                raise InventoryError(
+                    f"{src}: [[host]] name={h.name!r}: keys: missing; a run with --keys needs "
+                    f"each host's key directory: `swarmrig keys pack DIR OUT --agents {ids}`, "
+                    "copy OUT to that machine and give its path as keys"
+                )
+            if allow is not None:
+                missing = [i for i in h.agents if i not in allow.agents]
+                if missing:
+                    raise InventoryError(
+                        f"{src}: [[host]] name={h.name!r}: agents {missing} have no key in "
+                        f"{allow.path}"
+                    )
 
 
 def _is_loopback(host: str) -> bool:
@@ -154,6 +190,16 @@ def _python(table: Mapping[str, Any], where: str) -> str | None:
     return None
 
 
+def _keys_dir(value: Any, where: str) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise InventoryError(f"{where}: expected a directory on that machine (a string)")
+    if not (value.startswith("/") or value.startswith("~/")):
+        raise InventoryError(
+            f"{where}: {value!r}: give an absolute path on that machine (or one under ~/)"
+        )
+    return value
+
+
 def _ssh_options(value: Any, where: str) -> tuple[str, ...]:
     if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
         raise InventoryError(f'{where}: expected a list of strings, e.g. ["-p", "2222"]')
@@ -189,12 +235,15 @@ def _host(raw: Any, index: int, defaults: Mapping[str, Any], src: str) -> Host:
     python = _python(raw, where) or _python(defaults, f"{src}: [defaults]") or "python3"
     opts = raw.get("ssh_options", defaults.get("ssh_options", []))
     opts_where = where if "ssh_options" in raw else f"{src}: [defaults]"
+    keys = raw.get("keys", defaults.get("keys"))
+    keys_where = where if "keys" in raw else f"{src}: [defaults]"
     return Host(
         name=name,
         ssh=ssh,
         agents=tuple(agents),
         python=python,
         ssh_options=_ssh_options(opts, f"{opts_where}: ssh_options"),
+        keys=None if keys is None else _keys_dir(keys, f"{keys_where}: keys"),
     )
 
 

@@ -154,11 +154,17 @@ class RemoteLauncher:
         )
 
     # -- the fork-server interface ---------------------------------------------------------
-    def spawn(self, agent: int, join: str, log: str, heartbeat: float) -> None:
+    def spawn(
+        self, agent: int, join: str, log: str, heartbeat: float, keys: str | None = None
+    ) -> None:
         """Fork agent ``agent`` on its host; it joins the inventory's coordinator endpoint
-        (``join`` is the local bind address and is not used)."""
+        (``join`` is the local bind address and is not used). ``keys`` (the coordinator's
+        key directory) only says that the run is keyed: the agent reads its secret key from
+        its host's own key directory (the inventory's ``keys``), where its server runs."""
         self.logs[agent] = Path(log)
         host = self.inventory.host_of(agent)
+        if keys is not None and host.keys is None:
+            raise RemoteStartError(f"host {host.name}: the run has keys, the host none")
         self._send(
             self.sessions[host.name],
             {
@@ -167,6 +173,7 @@ class RemoteLauncher:
                 "join": self.inventory.coordinator,
                 "log": None,
                 "heartbeat": heartbeat,
+                "keys": None if keys is None else host.keys,
             },
         )
 
@@ -203,6 +210,7 @@ class RemoteLauncher:
                 "ssh": s.host.ssh,
                 "agents": list(s.host.agents),
                 "python": s.host.python,
+                "keys": s.host.keys,
                 "server_pid": s.pid,
                 "server_pgid": s.pgid,
             }

@@ -41,7 +41,6 @@ from node._errors import WireError
 from node._security import (
     CONTROL_DOMAIN,
     Gatekeeper,
-    KeyMaterialError,
     curve_server,
     fingerprint,
     load_agent_keys,
@@ -184,15 +183,12 @@ class Coordinator:
         self.triggers: list[tuple[int, int, str, Callable[[], None]]] = []
         self.unexpected: list[str] = []
         self.pending_peer_updates: list[int] = []
-        if options.keys is not None and options.inventory is not None:
-            raise KeyMaterialError(
-                "--keys with --inventory: the launcher does not hand key directories to its"
-                " hosts yet; start the agents by hand with swarmrig node --keys DIR"
-            )
         # Keys are checked before anything starts or is written (a loose secret key is refused
-        # here).
+        # here). Agents on inventory hosts read their own host's key directory.
         self.keys = None if options.keys is None else load_coordinator_keys(options.keys, self.n)
-        if self.keys is not None and options.launch_local:
+        if options.inventory is not None:
+            options.inventory.check_keys(None if self.keys is None else self.keys.allow)
+        elif self.keys is not None and options.launch_local:
             for i in range(self.n):  # the agents forked here read these files
                 load_agent_keys(self.keys.directory, i)
         out = options.out or RunDir.default_path(self.s.name, options.runs_root)

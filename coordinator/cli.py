@@ -353,6 +353,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
         except ScenarioError as exc:
             _err(str(exc))
             return EXIT_SCENARIO
+        if not args.keys and not is_loopback(inventory.listen):
+            print(
+                f"swarmrig: warning: {args.inventory.name} listens on {inventory.listen} "
+                "without --keys: anyone who can reach this port can join as an agent, feed "
+                "states into the run and read its plan. Make keys with `swarmrig keys make`, "
+                "give each host its packed directory (keys = ...) and pass --keys DIR.",
+                file=sys.stderr,
+            )
     if args.engine in ("lockstep", "batch"):
         from coordinator._batch import check_batch
         from coordinator._lockstep import check_lockstep

@@ -208,7 +208,8 @@ class AgentKeys:
 
 
 def load_agent_keys(directory: Path | str, agent: int) -> AgentKeys:
-    directory = Path(directory)
+    """An agent's keys from its key directory (``~/`` is that machine's user's home)."""
+    directory = Path(directory).expanduser()
     allow = read_allow_list(directory)
     name = allow.agents.get(agent)
     if name is None:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import signal
+import subprocess
 import sys
 import time
 from collections.abc import Iterator
@@ -18,7 +19,9 @@ from pathlib import Path
 
 import pytest
 
+from coordinator._keys import make_keys
 from coordinator._rundir import read_telemetry
+from node._runtime import CLOCK_SHIFT_ENV
 from tests.conftest import SESSION_TAG
 from tests.integration._netns import Lab, SshServer
 
@@ -30,10 +33,12 @@ AGENTS = {"rover1": [0, 1, 2], "rover2": [3, 4, 5]}
 
 @pytest.fixture
 def lab(processes, tmp_path) -> Iterator[tuple[Lab, dict[str, SshServer]]]:
-    lab = Lab(["coord", "rover1", "rover2"])
+    # "stranger" is a machine of the lab network that is not in the inventory
+    lab = Lab(["coord", "rover1", "rover2", "stranger"])
     try:
+        accept = f"{SESSION_TAG} {CLOCK_SHIFT_ENV}"
         servers = {
-            name: SshServer(lab[name], tmp_path / f"ssh-{name}", accept_env=SESSION_TAG)
+            name: SshServer(lab[name], tmp_path / f"ssh-{name}", accept_env=accept)
             for name in AGENTS
         }
         yield lab, servers
@@ -41,16 +46,26 @@ def lab(processes, tmp_path) -> Iterator[tuple[Lab, dict[str, SshServer]]]:
         lab.close()
 
 
-def write_inventory(path: Path, lab: Lab, servers: dict[str, SshServer], **host_keys) -> Path:
-    tag = f"SetEnv={SESSION_TAG}={os.environ[SESSION_TAG]}"
+def write_inventory(
+    path: Path,
+    lab: Lab,
+    servers: dict[str, SshServer],
+    *,
+    python: str = sys.executable,
+    keys: dict[str, Path] | None = None,
+    env: dict[str, dict[str, str]] | None = None,
+) -> Path:
+    """``keys``: each host's key directory; ``env``: more variables set on a host's session
+    (ssh SetEnv: one option holds them all, since ssh keeps the first value it reads)."""
     lines = [
         f'coordinator = "tcp://{lab["coord"].address}:{PORT}"',
         f'listen = "tcp://{lab["coord"].address}:{PORT}"',
         "",
     ]
     for name, agents in AGENTS.items():
-        opts = servers[name].client_options("-o", tag)
-        python = host_keys.get("python", sys.executable)
+        variables = {SESSION_TAG: os.environ[SESSION_TAG], **(env or {}).get(name, {})}
+        setenv = "SetEnv=" + " ".join(f"{k}={v}" for k, v in variables.items())
+        opts = servers[name].client_options("-o", setenv)
         lines += [
             "[[host]]",
             f'name = "{name}"',
@@ -58,20 +73,21 @@ def write_inventory(path: Path, lab: Lab, servers: dict[str, SshServer], **host_
             f"agents = {agents}",
             f"python = {json.dumps(python)}",
             f"ssh_options = {json.dumps(opts)}",
+            *([f"keys = {json.dumps(str(keys[name]))}"] if keys else []),
             "",
         ]
     path.write_text("\n".join(lines))
     return path
 
 
-def write_scenario(path: Path, budget: str) -> Path:
+def write_scenario(path: Path, budget: str, mode: str = "async", extra: str = "") -> Path:
     path.write_text(
         f"""
 [swarm]
 name = "rovers"
 agents = 6
 seed = 11
-mode = "async"
+mode = "{mode}"
 {budget}
 
 [topology]
@@ -83,6 +99,7 @@ period_ms = 5.0
 [network]
 transport = "tcp"
 host = "0.0.0.0"
+{extra}
 """
     )
     return path
@@ -212,4 +229,203 @@ def test_a_host_that_cannot_start_is_named_with_its_error(lab, processes, tmp_pa
     assert "host rover1" in run["exit"] or "host rover2" in run["exit"]
     assert "/nonexistent/python3" in run["exit"]
     assert "rover1: " in stderr and "/nonexistent/python3" in stderr
+    wait_until_empty(lab_, servers, 30.0)
+
+
+# -- keyed swarms on the namespace hosts ------------------------------------------------------
+#: a machine of the lab network with no key on the allow-list tries the coordinator's control
+#: port and an agent's data port, with a key of its own and in plaintext; prints one JSON line
+STRANGER = r"""
+import json, sys, zmq
+from zmq.utils.monitor import recv_monitor_message
+from node._wire import PROTOCOL, encode_control
+control, coordinator_key, data, agent_key = sys.argv[1:5]
+END = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
+       | zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_DISCONNECTED | zmq.EVENT_HANDSHAKE_SUCCEEDED)
+ctx = zmq.Context()
+def attempt(kind, endpoint, server_key):
+    s = ctx.socket(kind)
+    s.linger = 0
+    s.setsockopt(zmq.RECONNECT_IVL, -1)  # one connection, no second try
+    if server_key:
+        s.curve_publickey, s.curve_secretkey = zmq.curve_keypair()
+        s.curve_serverkey = server_key.encode()
+    if kind == zmq.SUB:
+        s.setsockopt(zmq.SUBSCRIBE, b"")
+    mon = s.get_monitor_socket(END)
+    s.connect(endpoint)
+    if kind == zmq.DEALER:
+        hello = {"agent": 3, "host": "stranger", "pid": 1, "version": "0.1.0",
+                 "protocol": PROTOCOL}
+        s.send(encode_control("hello", **hello), zmq.NOBLOCK)
+    if not mon.poll(120_000):
+        return "no answer"
+    ev = recv_monitor_message(mon)["event"]
+    got = s.poll(200)
+    s.close(linger=0)
+    mon.close(linger=0)
+    return "through" if ev == zmq.EVENT_HANDSHAKE_SUCCEEDED or got else "refused"
+out = []
+for _ in range(2):
+    out.append(attempt(zmq.DEALER, control, coordinator_key))
+    out.append(attempt(zmq.DEALER, control, None))
+    out.append(attempt(zmq.SUB, data, agent_key))
+    out.append(attempt(zmq.SUB, data, None))
+print(json.dumps(out))
+"""
+
+
+#: rounds-mode samples on a fixed grid of iterations, the same in every run
+EVERY = "[telemetry]\nevery_iterations = 10"
+
+
+def run_events(out: Path) -> list[dict]:
+    try:
+        text = (out / "events.jsonl").read_text()
+    except FileNotFoundError:
+        return []
+    return [json.loads(line) for line in text.splitlines() if line.endswith("}")]
+
+
+def wait_events(out: Path, count: int, deadline_s: float = 120.0, **match) -> list[dict]:
+    deadline = time.monotonic() + deadline_s
+    while True:
+        found = [e for e in run_events(out) if all(e.get(k) == v for k, v in match.items())]
+        if len(found) >= count or time.monotonic() > deadline:
+            return found
+        time.sleep(0.05)
+
+
+def packed_keys(tmp_path: Path) -> tuple[Path, dict[str, Path]]:
+    """One key pair per host (swarmrig keys make --host), each host's share packed with
+    ``swarmrig keys pack`` into a directory of its own (the same filesystem here)."""
+    keys = make_keys(
+        tmp_path / "swarm-keys", hosts=[f"{h}={','.join(map(str, a))}" for h, a in AGENTS.items()]
+    )
+    per_host = {}
+    for name, agents in AGENTS.items():
+        per_host[name] = tmp_path / f"{name}-keys"
+        r = subprocess.run(
+            [sys.executable, "-m", "coordinator.cli", "keys", "pack", str(keys),
+             str(per_host[name]), "--agents", ",".join(map(str, agents))],
+            capture_output=True, text=True, timeout=60,
+        )  # fmt: skip
+        assert r.returncode == 0, r.stderr
+        assert sorted(p.name for p in per_host[name].iterdir()) == [
+            "allow.toml",
+            f"{name}.key_secret",
+        ]
+    return keys, per_host
+
+
+def samples_x(out: Path, agent: int) -> dict[int, list[float]]:
+    return {
+        int(s[0]): s[2]
+        for b in read_telemetry(out / "telemetry" / f"agent-{agent}.msgpack")
+        for s in b.get("samples", [])
+    }
+
+
+def test_a_keyed_swarm_runs_on_namespace_hosts_and_refuses_a_stranger(lab, processes, tmp_path):
+    """CURVE on every channel across the namespaces; a machine of the lab network without a
+    listed key is refused on the control and the data port, each refusal logged with its
+    address; the run's states are those of a clean keyed run (rounds mode is deterministic)."""
+    lab_, servers = lab
+    keys, per_host = packed_keys(tmp_path)
+    inv = write_inventory(tmp_path / "hosts.toml", lab_, servers, keys=per_host)
+    # a budget no test waits for: the run is interrupted once the stranger has been refused
+    attacked = tmp_path / "attacked"
+    scenario = write_scenario(
+        tmp_path / "long.toml", "iterations = 100_000_000", mode="rounds", extra=EVERY
+    )
+    coord = start_coordinator(
+        lab_, processes, str(scenario), "--inventory", str(inv), "--keys", str(keys),
+        "--out", str(attacked), "--quiet",
+    )  # fmt: skip
+    run = wait_running(attacked, coord, 6)
+    assert run["security"]["curve"] is True
+    assert {h["name"]: h["keys"] for h in run["hosts"]} == {k: str(v) for k, v in per_host.items()}
+    bound = {e["agent"]: e["endpoint"] for e in run_events(attacked) if e["event"] == "agent-bound"}
+    allow = (per_host["rover2"] / "allow.toml").read_text()
+    agent_key = next(
+        line.split('"')[3] for line in allow.splitlines() if line.startswith('"rover2"')
+    )
+    coordinator_key = next(
+        line.split('"')[1] for line in allow.splitlines() if line.startswith("coordinator")
+    )
+    stranger = lab_["stranger"]
+    r = stranger.run(
+        sys.executable, "-c", STRANGER, f"tcp://{lab_['coord'].address}:{PORT}",
+        coordinator_key, bound[3], agent_key, timeout=300,
+    )  # fmt: skip
+    assert r.returncode == 0, r.stderr
+    tries = json.loads(r.stdout)
+    assert tries == ["refused"] * 8, tries  # 100 % of the tries
+    logged_c = wait_events(attacked, 4, event="peer-refused", by="coordinator")
+    logged_a = wait_events(attacked, 4, event="peer-refused", by="agent 3")
+    assert len(logged_c) == 4 and len(logged_a) == 4, (logged_c, logged_a)
+    for e in logged_c + logged_a:
+        # the kernel's address of the connection, or the IP from the key check
+        assert e["address"].startswith(f"{stranger.address}:") or (
+            e["address"] in ("unknown", stranger.address)
+        ), e
+    zap = [e for e in logged_c + logged_a if e["reason"].startswith("key refused")]
+    assert len(zap) == 4, zap  # the stranger's own key, twice on each port
+    assert all(e["address"].startswith(stranger.address) for e in zap), zap
+    os.kill(coord.pid, signal.SIGINT)
+    _, stderr = coord.communicate(timeout=120)
+    assert coord.returncode == 130, stderr
+    summary = json.loads((attacked / "summary.json").read_text())
+    assert summary["refused_peers"] == 8, summary["refused_peers"]
+    assert summary["messages"]["lost_transport"] == 0
+    assert not [e for e in run_events(attacked) if e["event"] == "hello-refused"]
+    wait_until_empty(lab_, servers, 30.0)
+
+    # the same scenario with keys, to a budget past every sample of the interrupted run
+    attacked_x = [samples_x(attacked, i) for i in range(6)]
+    reached = min(max(x) for x in attacked_x)
+    clean = tmp_path / "clean"
+    scenario = write_scenario(
+        tmp_path / "clean.toml", f"iterations = {reached}", mode="rounds", extra=EVERY
+    )
+    coord = start_coordinator(
+        lab_, processes, str(scenario), "--inventory", str(inv), "--keys", str(keys),
+        "--out", str(clean), "--quiet", "--json",
+    )  # fmt: skip
+    stdout, stderr = coord.communicate(timeout=600)
+    assert coord.returncode == 0, stderr
+    clean_summary = json.loads(stdout)
+    assert clean_summary["exit"] == "budget" and clean_summary["refused_peers"] == 0
+    for i in range(6):
+        clean_x = samples_x(clean, i)
+        common = sorted(set(clean_x) & set(attacked_x[i]))
+        assert common == sorted(k for k in attacked_x[i] if k <= reached), i
+        assert common[-1] == reached, (i, common[-3:])
+        for k in common:  # bit for bit: the stranger changed nothing
+            assert clean_x[k] == attacked_x[i][k], (i, k)
+    wait_until_empty(lab_, servers, 30.0)
+
+
+def test_a_loose_secret_key_on_a_host_is_refused_there(lab, processes, tmp_path):
+    """The agents check their key files' permissions on their own machine; the refusal
+    comes back over ssh naming the file and the fix, and nothing is left running."""
+    lab_, servers = lab
+    keys, per_host = packed_keys(tmp_path)
+    secret = per_host["rover2"] / "rover2.key_secret"
+    secret.chmod(0o644)
+    inv = write_inventory(tmp_path / "hosts.toml", lab_, servers, keys=per_host)
+    scenario = write_scenario(tmp_path / "rovers.toml", "iterations = 50")
+    out = tmp_path / "run"
+    coord = start_coordinator(
+        lab_, processes, str(scenario), "--inventory", str(inv), "--keys", str(keys),
+        "--out", str(out), "--quiet",
+    )  # fmt: skip
+    _, stderr = coord.communicate(timeout=120)
+    assert coord.returncode == 3, stderr
+    refusal = f"{secret}: secret key is accessible by group or others (mode 0644)"
+    for i in AGENTS["rover2"]:
+        assert f"rover2 agent {i}: agent {i}: {refusal}; run: chmod 600 {secret}" in stderr
+    assert refusal in (out / "telemetry" / "agent-3.log").read_text()
+    run = json.loads((out / "run.json").read_text())
+    assert "died unexpectedly (exit status 2) during start-up" in run["exit"], run["exit"]
     wait_until_empty(lab_, servers, 30.0)

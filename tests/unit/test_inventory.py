@@ -8,7 +8,9 @@ from pathlib import Path
 import pytest
 
 from coordinator._inventory import InventoryError, load_inventory
+from coordinator._keys import make_keys
 from coordinator._remote import ssh_command
+from node._security import read_allow_list
 from topologies._errors import ScenarioError
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -78,6 +80,8 @@ def test_the_example_inventory_is_valid():
         ),
         (('ssh_options = ["-p", "2222"]', 'ssh_options = "-p 2222"'), "ssh_options:"),
         (('ssh_options = ["-p", "2222"]', "port = 22"), "unknown key 'port'"),
+        (('venv = "/home/lab/venv"', 'venv = "/v"\nkeys = "lab-keys"'), "keys: 'lab-keys': give"),
+        (('venv = "/home/lab/venv"', 'venv = "/v"\nkeys = 3'), "keys: expected a directory"),
     ],
 )
 def test_bad_inventories_are_refused_naming_file_and_key(tmp_path, change, message):
@@ -117,3 +121,24 @@ def test_the_ssh_command_quotes_the_remote_side(tmp_path):
     remote = shlex.split(cmd[-1])
     assert remote[0] == "exec" and "/home/lab/my venv/bin/python" in remote
     assert remote[-3:] == ["node._forkserver", "--idle-timeout", "4"]
+
+
+def test_key_directories_per_host_with_keys_and_none_without(tmp_path):
+    keyed = GOOD.replace("[defaults]", '[defaults]\nkeys = "~/swarm-keys"').replace(
+        'venv = "/home/lab/venv"', 'venv = "/home/lab/venv"\nkeys = "/etc/pc2-keys"'
+    )
+    inv = load_inventory(write(tmp_path, keyed))
+    assert [h.keys for h in inv.hosts] == ["~/swarm-keys", "/etc/pc2-keys"]
+    allow = read_allow_list(make_keys(tmp_path / "k", agents=3))
+    inv.check_keys(allow)
+    with pytest.raises(InventoryError, match=r"name='rover-a': keys = '~/swarm-keys', but this"):
+        inv.check_keys(None)
+    short = read_allow_list(make_keys(tmp_path / "k2", agents=2))
+    with pytest.raises(InventoryError, match=r"name='lab-pc-2': agents \[2\] have no key in"):
+        inv.check_keys(short)
+    plain = load_inventory(write(tmp_path, GOOD))
+    plain.check_keys(None)
+    with pytest.raises(InventoryError) as err:
+        plain.check_keys(allow)
+    assert "name='rover-a': keys: missing" in str(err.value)
+    assert "swarmrig keys pack DIR OUT --agents 0,1" in str(err.value)
