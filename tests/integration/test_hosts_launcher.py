@@ -386,7 +386,10 @@ def test_a_keyed_swarm_runs_on_namespace_hosts_and_refuses_a_stranger(lab, proce
     wait_until_empty(lab_, servers, 30.0)
 
     # the same scenario with keys, to a budget past every sample of the interrupted run
-    attacked_x = [samples_x(attacked, i) for i in range(6)]
+    # (the grid only: an interrupted agent also samples where it stopped)
+    attacked_x = [
+        {k: v for k, v in samples_x(attacked, i).items() if k % 10 == 0} for i in range(6)
+    ]
     reached = min(max(x) for x in attacked_x)
     clean = tmp_path / "clean"
     scenario = write_scenario(
