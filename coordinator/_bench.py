@@ -2,8 +2,9 @@
 
 Every figure is measured in this call: spawn time (until every agent is ready), rounds-mode
 swarm iterations per second (agent iterations of the whole swarm per second of run phase),
-and the node's message path (encode -> PUB -> SUB -> decode, validate, account, fault
-decision) next to raw pyzmq moving the same bytes between two processes.
+the node's message path (encode -> PUB -> SUB -> decode, validate, account, fault
+decision) next to raw pyzmq moving the same bytes between two processes, and the cost of
+CURVE: a ring and the message path over TCP, keyed and plaintext, as a ratio.
 """
 
 from __future__ import annotations
@@ -22,7 +23,15 @@ import zmq
 
 from coordinator._bare_ring import bare_ring_rate
 
-__all__ = ["batch_rate", "bench", "message_path", "print_bench", "rounds_rate", "spawn_time"]
+__all__ = [
+    "batch_rate",
+    "bench",
+    "curve_rounds_rate",
+    "message_path",
+    "print_bench",
+    "rounds_rate",
+    "spawn_time",
+]
 
 
 def _scenario(n: int, mode: str = "rounds", iterations: int = 1, shape: str = "ring") -> dict:
@@ -42,12 +51,17 @@ def _scenario(n: int, mode: str = "rounds", iterations: int = 1, shape: str = "r
     }
 
 
-def _run(scenario: dict) -> dict[str, Any]:
+def _run(scenario: dict, curve: bool = False) -> dict[str, Any]:
     from coordinator._api import run
 
     root = Path(tempfile.mkdtemp(prefix="swarmrig-bench-"))
     try:
-        res = run(scenario, out=root / "run")
+        keys = None
+        if curve:
+            from coordinator._keys import make_keys
+
+            keys = make_keys(root / "keys", agents=int(scenario["swarm"]["agents"]))
+        res = run(scenario, out=root / "run", keys=keys)
         out = dict(res.summary)
         out["handshake_s"] = json.loads((root / "run" / "run.json").read_text()).get("handshake_s")
         if res.exit_code != 0:
@@ -65,6 +79,15 @@ def spawn_time(n: int) -> float:
 def rounds_rate(n: int, iterations: int) -> float:
     """Rounds mode on a ring of ``n``: agent iterations per second of the run phase."""
     return float(_run(_scenario(n, iterations=iterations))["iterations_per_s"])
+
+
+def curve_rounds_rate(n: int, iterations: int, curve: bool) -> float:
+    """Rounds mode on a ring of ``n`` over loopback TCP, every channel with CURVE (fresh keys,
+    ZAP allow-lists) or plaintext: agent iterations per second of the run phase."""
+    sc = _scenario(n, iterations=iterations)
+    sc["swarm"]["name"] = f"bench-{'curve' if curve else 'plain'}-ring-{n}"
+    sc["network"] = {"transport": "tcp"}
+    return float(_run(sc, curve=curve)["iterations_per_s"])
 
 
 def batch_rate(n: int, rounds: int, seeds: int = 1, shape: str = "ring") -> float:
@@ -85,8 +108,14 @@ def batch_rate(n: int, rounds: int, seeds: int = 1, shape: str = "ring") -> floa
 
 
 def _sender(
-    endpoint: str, ctl_endpoint: str, frames: list[bytes] | None, count: int, encode: bool
+    endpoint: str,
+    ctl_endpoint: str,
+    frames: list[bytes] | None,
+    count: int,
+    encode: bool,
+    curve: tuple[bytes, bytes, bytes] | None = None,
 ) -> None:
+    from node._security import DATA_DOMAIN, Gatekeeper, curve_server
     from node._wire import DataLayout
 
     encode = DataLayout({"x": 2}).encoder(0, 0)  # what an agent's publish uses
@@ -94,6 +123,12 @@ def _sender(
     pub = ctx.socket(zmq.PUB)
     pub.setsockopt(zmq.SNDHWM, 0)
     pub.setsockopt(zmq.LINGER, -1)
+    gate = None
+    if curve is not None:  # an agent's data PUB of a keyed swarm: CURVE server, ZAP allow-list
+        public, secret, subscriber = curve
+        gate = Gatekeeper(ctx)
+        gate.allow(DATA_DOMAIN, {subscriber: "bench"})
+        curve_server(pub, public, secret, DATA_DOMAIN)
     pub.bind(endpoint)
     ctl = ctx.socket(zmq.PAIR)
     ctl.connect(ctl_endpoint)
@@ -113,20 +148,34 @@ def _sender(
     ctl.recv()  # the receiver has everything
     pub.close()
     ctl.close()
+    if gate is not None:
+        gate.stop()
     ctx.term()
 
 
 def message_path(
-    count: int, *, node_path: bool, fault: dict | None = None, transport: str = "ipc"
+    count: int,
+    *,
+    node_path: bool,
+    fault: dict | None = None,
+    transport: str = "ipc",
+    curve: bool = False,
 ) -> dict[str, Any]:
     """Move ``count`` messages one way between two processes; messages per second received.
 
     ``node_path``: the sender encodes each message as an agent does and the receiver runs
     every frame through the agent's Receiver (decode, validate, account, fault decision);
-    otherwise both sides move the same pre-encoded bytes with plain pyzmq calls.
+    otherwise both sides move the same pre-encoded bytes with plain pyzmq calls. ``curve``:
+    the PUB and SUB are set up as in a keyed swarm (CURVE, the PUB's ZAP allow-list).
     """
     from node._receiver import Receiver
+    from node._security import curve_client
     from node._wire import encode_data
+
+    keys = None
+    if curve:
+        server, client = zmq.curve_keypair(), zmq.curve_keypair()
+        keys = (server[0], server[1], client[0])
 
     tmp = tempfile.mkdtemp(prefix="swarmrig-msg-")
     if transport == "ipc":
@@ -142,7 +191,7 @@ def message_path(
     if pid == 0:  # the child never touches the parent's contexts
         code = 0
         try:
-            _sender(endpoint, f"ipc://{tmp}/ctl", [frame], count, node_path)
+            _sender(endpoint, f"ipc://{tmp}/ctl", [frame], count, node_path, keys)
         except BaseException:
             code = 1
         os._exit(code)
@@ -152,7 +201,16 @@ def message_path(
     sub.setsockopt(zmq.SUBSCRIBE, b"")
     ctl = ctx.socket(zmq.PAIR)
     ctl.bind(f"ipc://{tmp}/ctl")
+    mon = None
+    if keys is not None:
+        curve_client(sub, client[0], client[1], server[0])
+        mon = sub.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED)
     sub.connect(endpoint)
+    if mon is not None:  # the CURVE handshake first, then the subscription can travel
+        if not mon.poll(60_000):
+            raise RuntimeError("bench: the CURVE handshake did not complete within 60 s")
+        sub.disable_monitor()
+        mon.close(linger=0)
     rx = Receiver(1, [0], {"x": 2}, seed=1, mode="async", period_s=0.001)
     rx.inlinks[0].set_epoch(0)
     if fault is not None:
@@ -217,7 +275,7 @@ def bench(
     rounds = 300 if quick else 4000
     count = 50_000 if quick else 1_000_000
     reps = 1 if quick else repeats
-    total = reps * (len(sizes) + 2 + 2 + 3 + 3)
+    total = reps * (len(sizes) + 2 + 2 + 3 + 3 + 4)
     done = 0
 
     def step(what: str) -> None:
@@ -272,9 +330,24 @@ def bench(
         step(f"node message path with a loss fault, {count} messages")
         faulty = message_path(count, node_path=True, fault=loss)
         fault_all.append(faulty["msgs_per_s"])
+    # The cost of CURVE, plaintext and keyed measured alternately (same machine, same call):
+    # a ring over loopback TCP (every channel keyed), and the node message path over TCP.
+    curve_all: dict[str, list[float]] = {"plain": [], "curve": []}
+    path_all: dict[str, list[float]] = {"plain": [], "curve": []}
+    curve_ring, curve_rounds = 8, (300 if quick else 2000)
+    for _ in range(reps):
+        for mode in ("plain", "curve"):
+            step(f"rounds rate, ring of {curve_ring} over TCP, {mode}, {curve_rounds} rounds")
+            curve_all[mode].append(curve_rounds_rate(curve_ring, curve_rounds, mode == "curve"))
+        for mode in ("plain", "curve"):
+            step(f"node message path over TCP, {mode}, {count} messages")
+            m = message_path(count, node_path=True, transport="tcp", curve=mode == "curve")
+            path_all[mode].append(m["msgs_per_s"])
     if progress is not None:
         progress(total, total, "done")
     assert node is not None and faulty is not None
+    curve_rates = {mode: _median(v) for mode, v in curve_all.items()}
+    curve_paths = {mode: _median(v) for mode, v in path_all.items()}
     raw_m, node_m, fault_m = _median(raw_all), _median(node_all), _median(fault_all)
     process_32 = _median(rates_all[32])
     bare = {n: _median(v) for n, v in bare_all.items()}
@@ -298,7 +371,18 @@ def bench(
             "msgs_per_s": fault_m,
             "extra_us_per_message": (1.0 / fault_m - 1.0 / node_m) * 1e6,
         },
+        "curve": {
+            "ring": curve_ring,
+            "rounds": curve_rounds,
+            "transport": "tcp (loopback)",
+            "rounds_iterations_per_s": curve_rates,
+            "rounds_ratio": curve_rates["curve"] / curve_rates["plain"],
+            "message_path_msgs_per_s": curve_paths,
+            "message_path_ratio": curve_paths["curve"] / curve_paths["plain"],
+        },
         "samples": {
+            "curve_rounds_iterations_per_s": curve_all,
+            "curve_message_path_msgs_per_s": path_all,
             "spawn_s": spawn_all,
             "batch_iterations_per_s": batch_all,
             "bare_ring_iterations_per_s": bare_all,
@@ -346,5 +430,15 @@ def print_bench(res: dict[str, Any]) -> None:
     t.add_row(
         "with a 1% loss fault",
         f"{fl['msgs_per_s']:,.0f} msg/s (+{fl['extra_us_per_message']:.2f} µs per message)",
+    )
+    cv = res["curve"]
+    rr, mp_ = cv["rounds_iterations_per_s"], cv["message_path_msgs_per_s"]
+    t.add_row(
+        f"CURVE, rounds mode, ring of {cv['ring']} over TCP ({cv['rounds']} rounds)",
+        f"{rr['curve']:,.0f} vs {rr['plain']:,.0f} plaintext ({cv['rounds_ratio']:.2f})",
+    )
+    t.add_row(
+        "CURVE, node message path over TCP",
+        f"{mp_['curve']:,.0f} vs {mp_['plain']:,.0f} msg/s ({cv['message_path_ratio']:.2f})",
     )
     Console().print(t)

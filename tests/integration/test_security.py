@@ -435,3 +435,12 @@ def test_hello_with_another_version_is_refused_naming_both(
     assert len(wait_events(out, "hello-refused", 2)) == 2
     os.killpg(coord.pid, 2)
     coord.communicate(timeout=WAIT_S)
+
+
+def test_the_bench_keyed_message_path_moves_every_message() -> None:
+    """The message paths `swarmrig bench` compares (CURVE and plaintext) lose nothing."""
+    from coordinator._bench import message_path
+
+    for curve in (False, True):
+        r = message_path(5000, node_path=True, transport="tcp", curve=curve)
+        assert (r["delivered"], r["lost_transport"], r["rejected"]) == (5000, 0, 0), (curve, r)

@@ -111,14 +111,19 @@ def test_bench_reports_progress_before_every_measurement(
     monkeypatch.setattr(
         _bench,
         "message_path",
-        lambda count, node_path, fault=None: measured.append("path") or {"msgs_per_s": 1.0},
+        lambda count, node_path, fault=None, transport="ipc", curve=False: (
+            measured.append("path") or {"msgs_per_s": 1.0}
+        ),
+    )
+    monkeypatch.setattr(
+        _bench, "curve_rounds_rate", lambda n, k, curve: measured.append("curve") or 1.0
     )
     reports: list[tuple[int, int, str, int]] = []
     _bench.bench(
         quick=False, repeats=2, progress=lambda d, t, w: reports.append((d, t, w, len(measured)))
     )
     total = len(measured)
-    assert total == 2 * (3 + 2 + 2 + 3 + 3)
+    assert total == 2 * (3 + 2 + 2 + 3 + 3 + 4)
     assert [r[0] for r in reports] == list(range(total + 1))
     assert {r[1] for r in reports} == {total}
     # each report comes before its measurement: nothing measured yet at report k but k
