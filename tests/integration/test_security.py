@@ -444,3 +444,24 @@ def test_the_bench_keyed_message_path_moves_every_message() -> None:
     for curve in (False, True):
         r = message_path(5000, node_path=True, transport="tcp", curve=curve)
         assert (r["delivered"], r["lost_transport"], r["rejected"]) == (5000, 0, 0), (curve, r)
+
+
+def test_an_inventory_without_keys_warns_and_host_keys_need_keys(tmp_path: Path, processes) -> None:
+    """An inventory listening beyond loopback without --keys warns like --listen; an inventory
+    naming host key directories in a run without --keys is refused before anything starts."""
+    scn = tmp_path / "open.toml"
+    scn.write_text(
+        scenario(tmp_path / "s.toml").read_text().replace('"tcp"', '"tcp"\nhost = "0.0.0.0"')
+    )
+    inv = tmp_path / "hosts.toml"
+    inv.write_text(
+        'coordinator = "tcp://10.213.9.1:5570"\n\n[[host]]\nname = "rover-a"\n'
+        f'ssh = "lab@rover-a.local"\nagents = {list(range(N))}\nkeys = "/home/lab/keys"\n'
+    )
+    out = tmp_path / "run"
+    p = processes.start("run", str(scn), "--inventory", str(inv), "--out", str(out), "--quiet")
+    _, err = p.communicate(timeout=WAIT_S)
+    assert "warning: hosts.toml listens on tcp://0.0.0.0:5570 without --keys" in err, err
+    assert "hosts.toml: [[host]] name='rover-a': keys = '/home/lab/keys', but this run" in err
+    assert p.returncode == 2, err
+    assert not out.exists()  # refused before the run directory was written
