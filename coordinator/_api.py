@@ -48,9 +48,13 @@ def run(
     runs_root: str | Path = "runs",
     view: Any = None,
     baseline: bool = False,
+    replace: bool = False,
     **options: Any,
 ) -> RunResult:
     """Run a scenario to the end and return summary, metrics series and link rows.
+
+    A non-empty ``out`` is refused (coordinator._rundir.OutNotEmpty) unless ``replace``,
+    which deletes the earlier run there first.
 
     ``baseline=True`` also runs the same scenario without its faults (in ``<out>/baseline``)
     and puts its figures beside the faulty run's under ``summary["baseline"]``.
@@ -60,10 +64,14 @@ def run(
         check_endpoint(options["listen"], option="listen", bind=True)
     swarm = scenario if isinstance(scenario, Swarm) else load(scenario)
     opts = RunOptions(
-        out=None if out is None else Path(out), runs_root=Path(runs_root), view=view, **options
+        out=None if out is None else Path(out),
+        runs_root=Path(runs_root),
+        view=view,
+        replace=replace,
+        **options,
     )
     result = execute(swarm, opts)
-    if baseline:
+    if baseline and result.exit_code not in (130, 6):  # interrupted, or the disk failed
         from coordinator._baseline import attach_baseline
 
         attach_baseline(swarm, result, opts)

@@ -13,8 +13,6 @@ import platform
 import shutil
 import signal
 import socket
-import tempfile
-import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -24,6 +22,8 @@ from typing import Any
 import numpy as np
 import zmq
 
+from coordinator._interrupts import EXIT_INTERRUPTED, Interrupts, abandon_run
+from coordinator._ipc_dirs import make_ipc_dir, remove_stale_ipc_dirs
 from coordinator._launch import ForkServer
 from coordinator._metrics import (
     AgentRecord,
@@ -33,7 +33,14 @@ from coordinator._metrics import (
     metric_series,
 )
 from coordinator._results import GapFunction, fault_windows, target_spread, verdict_figures
-from coordinator._rundir import LINK_COLUMNS, METRIC_COLUMNS, RunDir
+from coordinator._rundir import (
+    EXIT_WRITE_FAILED,
+    LINK_COLUMNS,
+    METRIC_COLUMNS,
+    RunDir,
+    RunDirError,
+    prepare_out,
+)
 from coordinator._snapshot import take_snapshot
 from coordinator._swarm import Swarm, with_transport
 from coordinator._window_events import WindowEvents
@@ -103,6 +110,9 @@ class RunOptions:
     inventory: Any = None
     #: key directory (swarmrig keys make): CURVE + allow-lists on every channel
     keys: Path | None = None
+    #: None: write into ``out`` as it is; False: refuse a non-empty ``out``; True: clear an
+    #: earlier run there first (the command line's --replace)
+    replace: bool | None = None
 
 
 @dataclass(slots=True)
@@ -192,7 +202,11 @@ class Coordinator:
             for i in range(self.n):  # the agents forked here read these files
                 load_agent_keys(self.keys.directory, i)
         out = options.out or RunDir.default_path(self.s.name, options.runs_root)
+        if options.replace is not None:
+            prepare_out(Path(out), options.replace)
         self.dir = RunDir(Path(out))
+        self.phase = "starting"
+        self.interrupts: Interrupts | None = None
         self.view = options.view
         self.window_events = WindowEvents(self.s.faults, self.n)
         self.run_json: dict[str, Any] = {}
@@ -220,7 +234,9 @@ class Coordinator:
         self.dir.event({"t_s": round(self.now_s(), 6), "event": name, **fields})
 
     def write_run_json(self, **updates: Any) -> None:
-        self.run_json.update(updates)
+        self.run_json.update(updates, phase=self.phase)
+        if self.interrupts is not None and self.interrupts.count:
+            self.run_json["interrupts"] = self.interrupts.records()
         self.run_json["agents"] = [
             {
                 "id": a.id,
@@ -285,7 +301,9 @@ class Coordinator:
             and inventory is None
             and self.s.network["transport"] == "ipc"
         ):
-            self.ipc_dir = tempfile.mkdtemp(prefix="swarmrig-")
+            for stale in remove_stale_ipc_dirs():
+                self.event("stale-ipc-dir-removed", path=stale)
+            self.ipc_dir = make_ipc_dir()
             self.swarm = with_transport(self.swarm, "ipc", self.ipc_dir)
         if inventory is not None:
             from coordinator._remote import RemoteLauncher, RemoteStartError
@@ -831,7 +849,9 @@ class Coordinator:
     # -- run phase ---------------------------------------------------------------------
     def check_stop_request(self, before_go: bool = False) -> None:
         if self.stop_requested:
-            raise _Stop(self.stop_requested, 130)
+            raise _Stop(self.stop_requested, EXIT_INTERRUPTED)
+        if self.dir.failure is not None:
+            raise _Stop(f"run directory write failed: {self.dir.failure}", EXIT_WRITE_FAILED)
 
     def run_phase(self) -> None:
         self.build_timeline()
@@ -859,8 +879,7 @@ class Coordinator:
                 if a.ready and not a.running and not a.dead and self.restart_ready(a):
                     self.go(a)
             self.show()
-            if self.stop_requested:
-                raise _Stop(self.stop_requested, 130)
+            self.check_stop_request()
             if self.unexpected:
                 raise _Stop(self.unexpected[0], 3)
             if self.first_diverged is not None:
@@ -887,7 +906,8 @@ class Coordinator:
         deadline = self.clock() + 1.5
         while self.clock() < deadline:
             self.pump(10)
-            if all(a.finished or a.dead for a in self.agents):
+            # an agent that was never told to go has no final report to send
+            if all(a.finished or a.dead or not a.running for a in self.agents):
                 break
         # let processes exit on their own, briefly, before the group is killed
         deadline = self.clock() + 1.0
@@ -1017,40 +1037,91 @@ class Coordinator:
 
     # -- the whole run -----------------------------------------------------------------
     def execute(self) -> RunResult:
-        self.dir.write_text("scenario.toml", self.s.to_toml())
-        self.dir.write_json("agents.json", self.swarm.agents_json())
-        handlers = self._install_signals()
+        own = Interrupts.current() is None  # the command line installs one for the process
+        self.interrupts = Interrupts.for_process()
+        self.interrupts.bind(self)
+        try:
+            return self._execute()
+        finally:
+            self.interrupts.release()
+            if own:
+                self.interrupts.uninstall()
+
+    def set_phase(self, phase: str, **updates: Any) -> None:
+        """Record what the coordinator is doing in run.json (interrupts record it too)."""
+        self.phase = phase
+        if self.interrupts is not None:
+            self.interrupts.phase = phase
+        with contextlib.suppress(RunDirError):  # kept in dir.failure, reported at the end
+            self.write_run_json(**updates)
+
+    def request_stop(self, reason: str) -> None:
+        self.stop_requested = self.stop_requested or reason
+
+    def abandon(self, interrupts: Interrupts) -> None:
+        abandon_run(self, interrupts)
+
+    def _execute(self) -> RunResult:
         try:
             try:
+                self.dir.write_text("scenario.toml", self.s.to_toml())
+                self.dir.write_json("agents.json", self.swarm.agents_json())
                 self.launch()
                 self.handshake()
-                self.write_run_json(exit="running", handshake_s=self.clock() - self.t_launch)
+                self.set_phase("running", exit="running", handshake_s=self.clock() - self.t_launch)
                 self.run_phase()
             except _Stop as st:
                 self.exit_reason, self.exit_code = st.reason, st.code
-            except KeyboardInterrupt:
-                self.exit_reason, self.exit_code = "interrupted (SIGINT)", 130
+            except RunDirError:
+                pass  # in self.dir.failure
             except Exception as exc:
                 self.exit_reason = f"coordinator error: {type(exc).__name__}: {exc}"
                 self.exit_code = 2
                 self.event("coordinator-error", error=self.exit_reason)
             self.t_end = self.clock()
+            self.settle_exit()
+            self.set_phase("stopping")
             with contextlib.suppress(Exception):
                 self.stop_all(self.exit_reason)
         finally:
             self.cleanup()
-            self._restore_signals(handlers)
+        self.set_phase("results")
         self.event("stop", reason=self.exit_reason)
-        result = self.results()
-        self.show(final=True, summary=result.summary)
-        self.write_run_json(
-            exit=self.exit_reason,
-            exit_code=self.exit_code,
-            stopped_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            verdict=result.summary["verdict"],
-        )
+        self.settle_exit()
+        try:
+            result = self.results()
+        except RunDirError:
+            result = RunResult({}, [], [], self.dir.path, EXIT_WRITE_FAILED)
+        self.settle_exit()
+        if self.dir.failure is None:
+            self.show(final=True, summary=result.summary)
+        self.phase = "done"
+        with contextlib.suppress(RunDirError):
+            self.write_run_json(
+                exit=self.exit_reason,
+                exit_code=self.exit_code,
+                stopped_utc=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                verdict=result.summary.get("verdict"),
+                write_failed=None if self.dir.failure is None else str(self.dir.failure),
+            )
+        self.dir.remove_tmp()
         self.dir.close()
+        result.exit_code = self.exit_code
         return result
+
+    def settle_exit(self) -> None:
+        """A failed write ends the run with EXIT_WRITE_FAILED; an interrupt at any phase
+        with 130 (a run that had ended on its own says so in its reason)."""
+        if self.dir.failure is not None:
+            if self.exit_code != EXIT_WRITE_FAILED:
+                self.exit_reason = f"run directory write failed: {self.dir.failure}"
+                self.exit_code = EXIT_WRITE_FAILED
+        elif self.interrupts and self.interrupts.count and self.exit_code != EXIT_INTERRUPTED:
+            first = self.interrupts.received[0]
+            self.exit_reason = (
+                f"{self.exit_reason}; {self.interrupts.reason} while {first['phase']}"
+            )
+            self.exit_code = EXIT_INTERRUPTED
 
     def cleanup(self) -> None:
         if self.fork is not None:
@@ -1064,25 +1135,6 @@ class Coordinator:
             self.ctx.term()
         if self.ipc_dir is not None:
             shutil.rmtree(self.ipc_dir, ignore_errors=True)
-
-    def _install_signals(self) -> dict[int, Any]:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        old = {}
-
-        def handler(signum: int, frame: Any) -> None:
-            name = signal.Signals(signum).name
-            if self.stop_requested:  # a second one: stop waiting
-                raise KeyboardInterrupt
-            self.stop_requested = f"interrupted ({name})"
-
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            old[sig] = signal.signal(sig, handler)
-        return old
-
-    def _restore_signals(self, old: dict[int, Any]) -> None:
-        for sig, h in old.items():
-            signal.signal(sig, h)
 
 
 def execute(swarm: Swarm, options: RunOptions | None = None) -> RunResult:

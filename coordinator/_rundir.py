@@ -2,17 +2,31 @@
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import datetime as dt
 import json
 import math
 import re
+import shutil
 from pathlib import Path
 from typing import Any
 
 import msgpack
 
-__all__ = ["LINK_COLUMNS", "METRIC_COLUMNS", "RunDir", "read_events", "read_telemetry"]
+from topologies._errors import ScenarioError, SwarmrigError
+
+__all__ = [
+    "EXIT_WRITE_FAILED",
+    "LINK_COLUMNS",
+    "METRIC_COLUMNS",
+    "OutNotEmpty",
+    "RunDir",
+    "RunDirError",
+    "prepare_out",
+    "read_events",
+    "read_telemetry",
+]
 
 LINK_COLUMNS = (
     "from",
@@ -54,58 +68,158 @@ def _clean(obj: Any) -> Any:
     return obj
 
 
+#: exit status of a run whose directory could not be written (full disk, unwritable --out)
+EXIT_WRITE_FAILED = 6
+
+
+class RunDirError(SwarmrigError):
+    """A file of the run directory could not be written (full disk, unwritable --out)."""
+
+    def __init__(self, path: Path, exc: OSError) -> None:
+        self.path = path
+        self.reason = exc.strerror or str(exc)
+        super().__init__(f"cannot write {path}: {self.reason}")
+
+
+class OutNotEmpty(ScenarioError):
+    """--out names a directory that already holds files (of an earlier run, maybe)."""
+
+
+#: what marks a directory as a run directory that --replace may clear
+_RUN_MARKS = ("run.json", "scenario.toml")
+
+
+def prepare_out(path: Path, replace: bool) -> None:
+    """Refuse a non-empty ``path`` unless ``replace``; with it, clear an earlier run there.
+
+    Only a run directory (it holds run.json or scenario.toml) is cleared: --replace on any
+    other non-empty directory is refused as well, so a typo cannot empty a home directory.
+    """
+    try:
+        entries = sorted(p.name for p in path.iterdir()) if path.is_dir() else []
+    except OSError as exc:
+        raise RunDirError(path, exc) from None
+    if not entries:
+        return
+    shown = ", ".join(entries[:5]) + (", ..." if len(entries) > 5 else "")
+    if not replace:
+        raise OutNotEmpty(
+            f"--out {path}: the directory is not empty ({len(entries)} entries: {shown}); a"
+            " second run would mix its files with the first's. Choose a new directory, or"
+            " pass --replace to delete the earlier run there"
+        )
+    if not any(m in entries for m in _RUN_MARKS):
+        raise OutNotEmpty(
+            f"--out {path} --replace: the directory holds no run.json or scenario.toml, so it"
+            f" is not a run directory ({shown}); refusing to delete it"
+        )
+    try:
+        shutil.rmtree(path)
+    except OSError as exc:
+        raise RunDirError(path, exc) from None
+
+
 class RunDir:
+    """The files of one run. Whole files (run.json, CSVs) raise RunDirError when they cannot
+    be written; events and telemetry never raise: the first failure is kept in ``failure``,
+    and later lines are dropped (the coordinator checks ``failure`` and ends the run)."""
+
     def __init__(self, path: Path) -> None:
         self.path = path
-        path.mkdir(parents=True, exist_ok=True)
-        (path / "telemetry").mkdir(exist_ok=True)
-        (path / "events.jsonl").touch()
+        self.failure: RunDirError | None = None
         self._tel: dict[int, Any] = {}
-        self._events = (path / "events.jsonl").open("a", buffering=1)
+        target = path
+        try:
+            path.mkdir(parents=True, exist_ok=True)
+            target = path / "telemetry"
+            target.mkdir(exist_ok=True)
+            target = path / "events.jsonl"
+            self._events = target.open("a", buffering=1)
+        except OSError as exc:
+            raise RunDirError(target, exc) from None
+
+    def _failed(self, path: Path, exc: OSError) -> RunDirError:
+        err = RunDirError(path, exc)
+        if self.failure is None:
+            self.failure = err
+        return err
+
+    def remove_tmp(self) -> None:
+        """Remove half-written files (NAME.tmp) left by a failed or abandoned write."""
+        with contextlib.suppress(OSError):
+            for p in self.path.glob("*.tmp"):
+                with contextlib.suppress(OSError):
+                    p.unlink()
 
     @staticmethod
     def default_path(name: str, root: Path = Path("runs")) -> Path:
         stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S.%fZ")
         return root / f"{name}-{stamp}"
 
-    def write_text(self, name: str, text: str) -> None:
-        tmp = self.path / (name + ".tmp")
-        tmp.write_text(text)
-        tmp.replace(self.path / name)
+    def write_text(self, name: str, text: str, *, tmp_name: str | None = None) -> None:
+        tmp = self.path / (tmp_name or name + ".tmp")
+        try:
+            tmp.write_text(text)
+            tmp.replace(self.path / name)
+        except OSError as exc:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+            raise self._failed(self.path / name, exc) from None
 
-    def write_json(self, name: str, obj: Any) -> None:
-        self.write_text(name, json.dumps(_clean(obj), indent=2) + "\n")
+    def write_json(self, name: str, obj: Any, *, tmp_name: str | None = None) -> None:
+        self.write_text(name, json.dumps(_clean(obj), indent=2) + "\n", tmp_name=tmp_name)
 
     def event(self, obj: dict[str, Any]) -> None:
-        self._events.write(json.dumps(_clean(obj)) + "\n")
+        if self.failure is not None:
+            return
+        try:
+            self._events.write(json.dumps(_clean(obj)) + "\n")
+        except (OSError, ValueError) as exc:  # ValueError: the file was closed
+            self._failed(self.path / "events.jsonl", _as_oserror(exc))
 
     def telemetry(self, agent: int, batch: dict[str, Any]) -> None:
-        f = self._tel.get(agent)
-        if f is None:
-            f = self._tel[agent] = (self.path / "telemetry" / f"agent-{agent}.msgpack").open("ab")
-        # string keys only, so that any msgpack reader takes the file with its defaults
-        f.write(msgpack.packb(_string_keys(batch)))
-        f.flush()
+        if self.failure is not None:
+            return
+        path = self.path / "telemetry" / f"agent-{agent}.msgpack"
+        try:
+            f = self._tel.get(agent)
+            if f is None:
+                f = self._tel[agent] = path.open("ab")
+            # string keys only, so that any msgpack reader takes the file with its defaults
+            f.write(msgpack.packb(_string_keys(batch)))
+            f.flush()
+        except OSError as exc:
+            self._failed(path, exc)
 
     def write_csv(self, name: str, columns: tuple[str, ...], rows: list[dict[str, Any]]) -> None:
         tmp = self.path / (name + ".tmp")
-        with tmp.open("w", newline="") as f:
-            w = csv.DictWriter(f, fieldnames=list(columns))
-            w.writeheader()
-            for r in rows:
-                w.writerow({k: ("" if r.get(k) is None else r.get(k)) for k in columns})
-        tmp.replace(self.path / name)
+        try:
+            with tmp.open("w", newline="") as f:
+                w = csv.DictWriter(f, fieldnames=list(columns))
+                w.writeheader()
+                for r in rows:
+                    w.writerow({k: ("" if r.get(k) is None else r.get(k)) for k in columns})
+            tmp.replace(self.path / name)
+        except OSError as exc:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+            raise self._failed(self.path / name, exc) from None
 
     def events(self) -> list[dict[str, Any]]:
         """Every event written so far, in order (read back from events.jsonl)."""
-        self._events.flush()
+        with contextlib.suppress(OSError, ValueError):
+            self._events.flush()
         return read_events(self.path / "events.jsonl")
 
     def close(self) -> None:
-        for f in self._tel.values():
-            f.close()
+        for f in [*self._tel.values(), self._events]:
+            with contextlib.suppress(OSError):  # a full disk: the write already failed
+                f.close()
         self._tel.clear()
-        self._events.close()
+
+
+def _as_oserror(exc: Exception) -> OSError:
+    return exc if isinstance(exc, OSError) else OSError(0, str(exc))
 
 
 def _string_keys(obj: Any) -> Any:

@@ -77,7 +77,12 @@ def _add_run(sub: Any) -> None:
         "--out",
         type=Path,
         metavar="DIR",
-        help="the run directory itself (default runs/<name>-<UTC>)",
+        help="the run directory itself (default runs/<name>-<UTC>); refused if not empty",
+    )
+    r.add_argument(
+        "--replace",
+        action="store_true",
+        help="with --out: delete the earlier run in that directory first",
     )
     r.add_argument(
         "--runs-root",
@@ -201,6 +206,14 @@ def _add_keys(sub: Any) -> None:
     kp.add_argument("--agents", required=True, metavar="IDS", help="the host's agents: 0,1,2")
 
 
+def _add_salvage(sub: Any) -> None:
+    s = sub.add_parser(
+        "salvage",
+        help="finish a run directory whose coordinator died, from the telemetry on disk",
+    )
+    s.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="the run directory to finish")
+
+
 def _add_bench(sub: Any) -> None:
     b = sub.add_parser("bench", help="measure what this machine can hold")
     b.add_argument("--json", action="store_true", help="print the figures as JSON")
@@ -224,6 +237,7 @@ def _parser() -> argparse.ArgumentParser:
     _add_node(sub)
     _add_bench(sub)
     _add_keys(sub)
+    _add_salvage(sub)
     from coordinator._study_cli import add_study_parsers
 
     add_study_parsers(sub)
@@ -300,11 +314,24 @@ class _JoinProgress:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
+    from coordinator._interrupts import EXIT_INTERRUPTED, Interrupts
+
+    # first, so that a Ctrl-C at any moment is handled (coordinator._interrupts)
+    interrupts = Interrupts.for_process()
+    try:
+        code = _run_command(args)
+        return EXIT_INTERRUPTED if interrupts.count and code == 0 else code
+    finally:
+        interrupts.uninstall()  # the handlers from before (main() called in-process)
+
+
+def _run_command(args: argparse.Namespace) -> int:
     from rich.console import Console
 
     from coordinator._api import load, run
     from coordinator._demos import DEFAULT_DEMO, list_demos
     from coordinator._results import quiet_line, strict_exit_status
+    from coordinator._rundir import EXIT_WRITE_FAILED, RunDirError
     from coordinator._view import LiveView, summary_table
     from topologies._errors import ScenarioError
 
@@ -387,16 +414,20 @@ def _cmd_run(args: argparse.Namespace) -> int:
             handshake_timeout=args.join_timeout,
             on_join=_JoinProgress() if args.no_launch else None,
             keys=args.keys,
+            replace=args.replace,
         )
-    except ScenarioError as exc:  # key material refused before anything started
+    except (ScenarioError, RunDirError) as exc:  # refused (keys, --out) before anything started
         if view is not None:
             view.close()
             view = None
         _err(str(exc))
-        return EXIT_SCENARIO
+        return EXIT_WRITE_FAILED if isinstance(exc, RunDirError) else EXIT_SCENARIO
     finally:
         if view is not None:
             view.close()
+    if result.exit_code == EXIT_WRITE_FAILED:
+        _err(f"{result.run_dir}: {json.dumps(_exit_reason(result.run_dir))}")
+        return EXIT_WRITE_FAILED
     if args.json:
         print(json.dumps(result.summary, indent=2))
     if args.quiet:
@@ -408,6 +439,31 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.strict_exit and result.exit_code == 0:
         return strict_exit_status(result.summary)
     return result.exit_code
+
+
+def _exit_reason(run_dir: Path) -> str:
+    """Why run.json says the run ended (or, if run.json cannot be read, that it cannot)."""
+    try:
+        return str(json.loads((run_dir / "run.json").read_text())["write_failed"])
+    except (OSError, ValueError, KeyError):
+        return "the run directory could not be written, nor run.json read back"
+
+
+def _cmd_salvage(args: argparse.Namespace) -> int:
+    from coordinator._salvage import SalvageRefused, salvage
+    from topologies._errors import ScenarioError
+
+    try:
+        summary = salvage(args.run_dir)
+    except (SalvageRefused, ScenarioError) as exc:
+        _err(str(exc))
+        return EXIT_SCENARIO
+    print(
+        f"recovered {args.run_dir}: verdict {summary.get('verdict')}, final gap"
+        f" {_short(summary.get('final_gap'))}, from the telemetry of"
+        f" {summary.get('agents')} agents (run.json and summary.json say recovered)"
+    )
+    return 0
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -519,6 +575,7 @@ _COMMANDS = {
     "node": _cmd_node,
     "bench": _cmd_bench,
     "keys": _cmd_keys,
+    "salvage": _cmd_salvage,
 }
 
 
