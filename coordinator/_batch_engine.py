@@ -159,7 +159,11 @@ class Engine:
                 if view and (k + 1) % ROUNDS_PER_FLUSH == 0:
                     for c in self.coords:
                         c.show()
-                if any(c.stop_requested for c in self.coords):
+                # (a seed that stopped on its own, diverged say, has stop_requested set too;
+                # only a request on a seed still running stops the others)
+                if any(
+                    c.stop_requested for s, c in enumerate(self.coords) if self.stopped[s] is None
+                ):
                     for s, c in enumerate(self.coords):
                         if self.stopped[s] is None:
                             self._stop(s, c.stop_requested or "interrupted", 130)

@@ -50,6 +50,10 @@ from topologies._errors import ScenarioError
 
 __all__ = ["StudyChanged", "StudyFrames", "StudyOptions", "load_study", "run_study"]
 
+#: seeds of one point stacked in one batch-engine run: at least this many (when the point
+#: has them), else the point's seeds shared evenly among the workers, at most STACK_MAX
+STACK_MIN = 8
+STACK_MAX = 64
 #: quantities whose median and quartiles points.csv reports (runs.csv column names)
 POINT_STATS = ("final_gap", "worst_agent_gap", "final_consensus_error", "time_to_tolerance_s")
 
@@ -103,6 +107,9 @@ class _Runner:
         self.failed = 0
         self.total = 0
         self.t0 = time.monotonic()
+        #: every job handed to run() so far, in the study's order (for runs.csv)
+        self.order: list[_Job] = []
+        self._last_table = 0.0
 
     def record(self, job_id: str) -> dict[str, Any] | None:
         if job_id in self.records:
@@ -116,6 +123,7 @@ class _Runner:
     def run(self, jobs: list[_Job], seeds_of_point: Callable[[_Job], int] | None = None) -> None:
         """Run every job of ``jobs`` that has no record yet; returns when all have one."""
         todo = [j for j in jobs if self.record(j.id) is None]
+        self.order += jobs
         self.total += len(jobs)
         self.done_before += len(jobs) - len(todo)
         self._report()
@@ -128,15 +136,49 @@ class _Runner:
         limit = concurrency(
             engine_guess, agents_per_run(next(iter(docs.values()))), self.pool.workers
         )
-        pending: dict[Any, _Job] = {}
-        queue = list(todo)
+        pending: dict[Any, list[_Job]] = {}
+        queue = self._chunks(todo, docs)
         while queue or pending:
             while queue and len(pending) < limit:
-                j = queue.pop(0)
-                pending[self.pool.submit(docs[j.id])] = j
+                chunk = queue.pop(0)
+                pending[self.pool.submit([docs[j.id] for j in chunk])] = chunk
             for fut in self.pool.wait_any(pending, timeout=0.5):
-                j = pending.pop(fut)
-                self._finish(j, fut)
+                self._finish(pending.pop(fut), fut)
+
+    def _chunks(self, todo: list[_Job], docs: Mapping[str, Any]) -> list[list[_Job]]:
+        """The jobs in the pieces handed to a worker: the seeds of one point together where
+        the batch engine runs the point (stacked in one array loop, see
+        _study_runs.run_jobs), else one job a piece."""
+        groups: dict[tuple[Any, ...], list[_Job]] = {}
+        for j in todo:
+            groups.setdefault((j.point, j.weights, j.faults), []).append(j)
+        workers = max(1, self.pool.workers)
+        out: list[list[_Job]] = []
+        for members in groups.values():
+            if len(members) == 1 or not self._batch_point(docs[members[0].id]):
+                out += [[j] for j in members]
+                continue
+            size = min(STACK_MAX, max(math.ceil(len(members) / workers), STACK_MIN))
+            out += [members[i : i + size] for i in range(0, len(members), size)]
+        return out
+
+    def _batch_point(self, doc: Mapping[str, Any]) -> bool:
+        """Whether the batch engine runs this point (checked on its first seed)."""
+        if self.engine not in ("auto", "batch"):
+            return False
+        from coordinator._scenario import load_scenario
+        from coordinator._study_runs import pick_engine
+        from coordinator._swarm import build_swarm
+
+        try:
+            sw = build_swarm(
+                load_scenario(
+                    doc["scenario"], source=self.spec.source, base_dir=doc["scenario_dir"]
+                )
+            )
+            return pick_engine(sw, self.engine) == "batch"
+        except ScenarioError:
+            return False  # the worker reports it, run by run
 
     def _job_dict(self, j: _Job) -> dict[str, Any]:
         doc = scenario_doc(self.spec, j.values, j.seed)
@@ -158,31 +200,45 @@ class _Runner:
         seeds = list(self.spec.seeds)
         return seeds.index(j.seed) if j.seed in seeds else len(seeds) + j.seed
 
-    def _finish(self, j: _Job, fut: Any) -> None:
+    def _finish(self, chunk: list[_Job], fut: Any) -> None:
         try:
-            rec = fut.result()
-        except Exception as exc:  # the run could not be made: recorded, not retried
-            rec = {
-                "id": j.id,
-                "engine": None,
-                "exit_code": None,
-                "summary": {"verdict": "failed", "exit": f"{type(exc).__name__}: {exc}"},
-                "error": f"{type(exc).__name__}: {exc}",
-            }
-        if rec.get("exit_code") == 130:
-            raise KeyboardInterrupt  # the run was interrupted: it is not finished
-        packed = rec.pop("packed", None)
-        if packed is not None:
-            unpack(packed, self.runs_dir / j.id)
-        rec["job"] = j.label() | {"weights": j.weights, "faults": j.faults}
-        rec["success"] = self.spec.is_success({**rec["summary"], "exit_code": rec["exit_code"]})
-        self.failed += rec.get("error") is not None or rec["summary"].get("verdict") == "failed"
-        tmp = self.rows_dir / f".{j.id}.json.tmp"
-        tmp.write_text(json.dumps(rec, default=str))
-        os.replace(tmp, self.rows_dir / f"{j.id}.json")
-        self.records[j.id] = rec
-        self.computed += 1
+            recs = fut.result()
+        except Exception as exc:  # the runs could not be made: recorded, not retried
+            recs = [
+                {
+                    "id": j.id,
+                    "engine": None,
+                    "exit_code": None,
+                    "summary": {"verdict": "failed", "exit": f"{type(exc).__name__}: {exc}"},
+                    "error": f"{type(exc).__name__}: {exc}",
+                }
+                for j in chunk
+            ]
+        if any(rec.get("exit_code") == 130 for rec in recs):
+            raise KeyboardInterrupt  # a run was interrupted: it is not finished
+        for j, rec in zip(chunk, recs, strict=True):
+            packed = rec.pop("packed", None)
+            if packed is not None:
+                unpack(packed, self.runs_dir / j.id)
+            rec["job"] = j.label() | {"weights": j.weights, "faults": j.faults}
+            rec["success"] = self.spec.is_success({**rec["summary"], "exit_code": rec["exit_code"]})
+            self.failed += rec.get("error") is not None or rec["summary"].get("verdict") == "failed"
+            tmp = self.rows_dir / f".{j.id}.json.tmp"
+            tmp.write_text(json.dumps(rec, default=str))
+            os.replace(tmp, self.rows_dir / f"{j.id}.json")
+            self.records[j.id] = rec
+            self.computed += 1
         self._report()
+        self._progress_table()
+
+    def _progress_table(self, force: bool = False) -> None:
+        """runs.csv of the runs finished so far, in the study's order (at most once a
+        second while running; the closing write_tables writes the final one)."""
+        now = time.monotonic()
+        if not force and now - self._last_table < 1.0:
+            return
+        self._last_table = now
+        write_runs_csv(self.spec, self.out, [(j, self.records.get(j.id)) for j in self.order])
 
     def _report(self) -> None:
         if self.opts.progress is None:
@@ -453,8 +509,8 @@ def _front_jobs(spec: StudySpec) -> list[_Job]:
 # --------------------------------------------------------------------------- tables
 
 
-def write_tables(spec: StudySpec, out: Path, jobs: list[tuple[_Job, Any]]) -> None:
-    """runs.csv, points.csv and (fronts) front.csv and front.json from the records."""
+def write_runs_csv(spec: StudySpec, out: Path, jobs: list[tuple[_Job, Any]]) -> Any:
+    """runs.csv from the records (jobs without one are left out); returns the frame."""
     import pandas as pd
 
     rows = []
@@ -478,6 +534,14 @@ def write_tables(spec: StudySpec, out: Path, jobs: list[tuple[_Job, Any]]) -> No
         rows.append(row)
     runs = pd.DataFrame(rows)
     _write_csv(runs, out / "runs.csv")
+    return runs
+
+
+def write_tables(spec: StudySpec, out: Path, jobs: list[tuple[_Job, Any]]) -> None:
+    """runs.csv, points.csv and (fronts) front.csv and front.json from the records."""
+    import pandas as pd
+
+    runs = write_runs_csv(spec, out, jobs)
     if runs.empty:
         return
     varied = [k for k in (spec.vary or {})] or ([spec.search["key"]] if spec.search else [])

@@ -31,6 +31,7 @@ __all__ = [
     "flatten_scalars",
     "pick_engine",
     "run_job",
+    "run_jobs",
     "run_swarm",
     "start_pool",
 ]
@@ -146,6 +147,53 @@ def run_job(job: Mapping[str, Any]) -> dict[str, Any]:
     ``dest`` (folder for kept run directories on this machine, or None to pack the kept
     directory into the record), ``keep``, and for fronts ``groups`` and ``weights``.
     """
+    return run_jobs([job])[0]
+
+
+def run_jobs(jobs: list[Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """Run several runs of a study and return their records, in order.
+
+    The runs that the batch engine takes and that can share a block (the seeds of one point:
+    same period, budget and algorithm configuration) run as one batch, several seeds stacked
+    in one array loop (coordinator._batch.execute_many); every seed's run directory and
+    summary are those of the seed run alone. The others run one by one.
+    """
+    preps = [_prepare(job) for job in jobs]
+    results: list[Any] = [None] * len(preps)
+    try:
+        stacks: dict[str, list[int]] = {}
+        for k, p in enumerate(preps):
+            if p["engine"] == "batch":
+                sw = p["swarm"]
+                key = repr(
+                    (sw.algorithm, sw.scenario.timing, sw.scenario.iterations, sw.scenario.seconds)
+                )
+                stacks.setdefault(key, []).append(k)
+            else:
+                results[k] = run_swarm(p["swarm"], p["engine"], p["tmp"])
+        for members in stacks.values():
+            if len(members) == 1:
+                k = members[0]
+                results[k] = run_swarm(preps[k]["swarm"], "batch", preps[k]["tmp"])
+                continue
+            from coordinator._batch import BatchCoordinator, execute_many
+            from coordinator._run import RunOptions
+
+            coords = [
+                BatchCoordinator(preps[k]["swarm"], RunOptions(out=preps[k]["tmp"], engine="batch"))
+                for k in members
+            ]
+            for k, result in zip(members, execute_many(coords), strict=True):
+                results[k] = result
+        return [_record(p, r) for p, r in zip(preps, results, strict=True)]
+    finally:
+        for p in preps:
+            shutil.rmtree(p["tmp"], ignore_errors=True)
+            if not p["job"].get("dest"):
+                shutil.rmtree(p["scratch"], ignore_errors=True)
+
+
+def _prepare(job: Mapping[str, Any]) -> dict[str, Any]:
     from coordinator._scenario import load_scenario
     from coordinator._swarm import build_swarm
 
@@ -164,45 +212,54 @@ def run_job(job: Mapping[str, Any]) -> dict[str, Any]:
     scratch = Path(dest) if dest else Path(tempfile.mkdtemp(prefix="swarmrig-study-"))
     scratch.mkdir(parents=True, exist_ok=True)
     tmp = scratch / f".tmp-{job['id']}-{os.getpid()}-{uuid.uuid4().hex[:6]}"
-    try:
-        result = run_swarm(swarm, engine, tmp)
-        summary = result.summary
-        finals = final_states(tmp, swarm.n)
-        rec: dict[str, Any] = {
-            "id": job["id"],
-            "engine": engine,
-            "exit_code": result.exit_code,
-            "summary": summary,
-            "finals": None if finals is None else finals.tolist(),
-            "series": thin_series(result.metrics),
-            "windows": fault_windows(scenario, result.metrics, tmp),
-            "computed": {"pid": os.getpid(), "nonce": uuid.uuid4().hex, "t_s": 0.0},
-        }
-        ref = swarm.reference
-        if job.get("weights") is not None:
-            rec["front"] = _front_record(
-                job["groups"], base_objectives, summary, finals, ref.x_star, how
-            )
-        (tmp / "study-run.json").write_text(
-            _json({k: v for k, v in rec.items() if k not in ("summary", "series")})
+    return {
+        "job": job,
+        "t0": t0,
+        "scenario": scenario,
+        "swarm": swarm,
+        "base_objectives": base_objectives,
+        "how": how,
+        "engine": engine,
+        "scratch": scratch,
+        "tmp": tmp,
+    }
+
+
+def _record(p: Mapping[str, Any], result: Any) -> dict[str, Any]:
+    job, swarm, tmp, scratch = p["job"], p["swarm"], p["tmp"], p["scratch"]
+    summary = result.summary
+    finals = final_states(tmp, swarm.n)
+    rec: dict[str, Any] = {
+        "id": job["id"],
+        "engine": p["engine"],
+        "exit_code": result.exit_code,
+        "summary": summary,
+        "finals": None if finals is None else finals.tolist(),
+        "series": thin_series(result.metrics),
+        "windows": fault_windows(p["scenario"], result.metrics, tmp),
+        "computed": {"pid": os.getpid(), "nonce": uuid.uuid4().hex, "t_s": 0.0},
+    }
+    ref = swarm.reference
+    if job.get("weights") is not None:
+        rec["front"] = _front_record(
+            job["groups"], p["base_objectives"], summary, finals, ref.x_star, p["how"]
         )
-        rec["run_dir"] = None
-        if job.get("keep"):
-            if dest:
-                final = scratch / job["id"]
-                if final.exists():  # a run interrupted before its record was written
-                    shutil.rmtree(final)
-                tmp.rename(final)
-                rec["run_dir"] = f"runs/{job['id']}"
-            else:
-                rec["packed"] = _pack(tmp)
-                rec["run_dir"] = f"runs/{job['id']}"
-        rec["computed"]["t_s"] = time.monotonic() - t0
-        return rec
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
-        if not dest:
-            shutil.rmtree(scratch, ignore_errors=True)
+    (tmp / "study-run.json").write_text(
+        _json({k: v for k, v in rec.items() if k not in ("summary", "series")})
+    )
+    rec["run_dir"] = None
+    if job.get("keep"):
+        if job.get("dest"):
+            final = scratch / job["id"]
+            if final.exists():  # a run interrupted before its record was written
+                shutil.rmtree(final)
+            tmp.rename(final)
+            rec["run_dir"] = f"runs/{job['id']}"
+        else:
+            rec["packed"] = _pack(tmp)
+            rec["run_dir"] = f"runs/{job['id']}"
+    rec["computed"]["t_s"] = time.monotonic() - p["t0"]
+    return rec
 
 
 def _json(obj: Any) -> str:
@@ -375,8 +432,8 @@ class LocalPool:
             initializer=_ignore_sigint,
         )
 
-    def submit(self, job: Mapping[str, Any]) -> Any:
-        return self._ex.submit(run_job, dict(job))
+    def submit(self, jobs: list[Mapping[str, Any]]) -> Any:
+        return self._ex.submit(run_jobs, [dict(j) for j in jobs])
 
     def wait_any(self, futures: Iterable[Any], timeout: float) -> set[Any]:
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -407,10 +464,10 @@ class ClusterPool:
         self.client = Client(address, timeout="20s")
         self.workers = max(1, sum(self.client.nthreads().values()))
 
-    def submit(self, job: Mapping[str, Any]) -> Any:
-        job = {**job, "dest": None}
+    def submit(self, jobs: list[Mapping[str, Any]]) -> Any:
+        jobs = [{**j, "dest": None} for j in jobs]
         return self.client.submit(
-            run_job, job, pure=False, key=f"swarmrig-run-{job['id']}-{uuid.uuid4().hex[:6]}"
+            run_jobs, jobs, pure=False, key=f"swarmrig-run-{jobs[0]['id']}-{uuid.uuid4().hex[:6]}"
         )
 
     def wait_any(self, futures: Iterable[Any], timeout: float) -> set[Any]:
