@@ -181,7 +181,8 @@ class _Runner:
             return False  # the worker reports it, run by run
 
     def _job_dict(self, j: _Job) -> dict[str, Any]:
-        doc = scenario_doc(self.spec, j.values, j.seed)
+        # a front's values are its weights (w0, w1, ...), handed over as weights, not keys
+        doc = scenario_doc(self.spec, {} if j.weights is not None else j.values, j.seed)
         if not j.faults:
             doc.pop("fault", None)
         keep = self.opts.keep_runs is None or self._seed_rank(j) < self.opts.keep_runs
