@@ -17,6 +17,7 @@ import signal
 import subprocess
 import sys
 import time
+import tomllib
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -238,21 +239,25 @@ def test_a_host_that_cannot_start_is_named_with_its_error(lab, processes, tmp_pa
 
 # -- keyed swarms on the namespace hosts ------------------------------------------------------
 #: a machine of the lab network with no key on the allow-list tries the coordinator's control
-#: port and an agent's data port, with a key of its own and in plaintext; prints one JSON line
+#: port and an agent's data port, with a key of its own and in plaintext, and the control port
+#: with a listed public key (rover1's, from the public allow.toml) without its secret; prints
+#: one JSON line
 STRANGER = r"""
 import json, sys, zmq
 from zmq.utils.monitor import recv_monitor_message
 from node._wire import PROTOCOL, encode_control
-control, coordinator_key, data, agent_key = sys.argv[1:5]
+control, coordinator_key, data, agent_key, listed = sys.argv[1:6]
 END = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
        | zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_DISCONNECTED | zmq.EVENT_HANDSHAKE_SUCCEEDED)
 ctx = zmq.Context()
-def attempt(kind, endpoint, server_key):
+def attempt(kind, endpoint, server_key, public=None):
     s = ctx.socket(kind)
     s.linger = 0
     s.setsockopt(zmq.RECONNECT_IVL, -1)  # one connection, no second try
     if server_key:
         s.curve_publickey, s.curve_secretkey = zmq.curve_keypair()
+        if public:
+            s.curve_publickey = public.encode()
         s.curve_serverkey = server_key.encode()
     if kind == zmq.SUB:
         s.setsockopt(zmq.SUBSCRIBE, b"")
@@ -273,6 +278,7 @@ out = []
 for _ in range(2):
     out.append(attempt(zmq.DEALER, control, coordinator_key))
     out.append(attempt(zmq.DEALER, control, None))
+    out.append(attempt(zmq.DEALER, control, coordinator_key, listed))
     out.append(attempt(zmq.SUB, data, agent_key))
     out.append(attempt(zmq.SUB, data, None))
 print(json.dumps(out))
@@ -330,10 +336,10 @@ def samples_x(out: Path, agent: int) -> dict[int, list[float]]:
     }
 
 
-def test_a_keyed_swarm_runs_on_namespace_hosts_and_refuses_a_stranger(lab, processes, tmp_path):
-    """CURVE on every channel across the namespaces; a machine of the lab network without a
-    listed key is refused on the control and the data port, each refusal logged with its
-    address; the run's states are those of a clean keyed run (rounds mode is deterministic)."""
+def test_a_stranger_on_the_lab_network_is_refused_on_every_port(lab, processes, tmp_path):
+    """A machine of the lab network without a listed key is refused on the control and the
+    data port of a keyed swarm running across the namespaces, each refusal logged with its
+    address; the run's states are those of the lockstep engine (rounds mode is deterministic)."""
     lab_, servers = lab
     keys, per_host = packed_keys(tmp_path)
     inv = write_inventory(tmp_path / "hosts.toml", lab_, servers, keys=per_host)
@@ -350,24 +356,20 @@ def test_a_keyed_swarm_runs_on_namespace_hosts_and_refuses_a_stranger(lab, proce
     assert run["security"]["curve"] is True
     assert {h["name"]: h["keys"] for h in run["hosts"]} == {k: str(v) for k, v in per_host.items()}
     bound = {e["agent"]: e["endpoint"] for e in run_events(attacked) if e["event"] == "agent-bound"}
-    allow = (per_host["rover2"] / "allow.toml").read_text()
-    agent_key = next(
-        line.split('"')[3] for line in allow.splitlines() if line.startswith('"rover2"')
-    )
-    coordinator_key = next(
-        line.split('"')[1] for line in allow.splitlines() if line.startswith("coordinator")
-    )
+    # public keys only: what anyone on the lab network may have read
+    allow = tomllib.loads((per_host["rover2"] / "allow.toml").read_text())
+    key_of, coordinator_key = allow["keys"], allow["coordinator"]
     stranger = lab_["stranger"]
     r = stranger.run(
         sys.executable, "-c", STRANGER, f"tcp://{lab_['coord'].address}:{PORT}",
-        coordinator_key, bound[3], agent_key, timeout=300,
+        coordinator_key, bound[3], key_of["rover2"], key_of["rover1"], timeout=300,
     )  # fmt: skip
     assert r.returncode == 0, r.stderr
     tries = json.loads(r.stdout)
-    assert tries == ["refused"] * 8, tries  # 100 % of the tries
-    logged_c = wait_events(attacked, 4, event="peer-refused", by="coordinator")
+    assert tries == ["refused"] * 10, tries  # 100 % of the tries
+    logged_c = wait_events(attacked, 6, event="peer-refused", by="coordinator")
     logged_a = wait_events(attacked, 4, event="peer-refused", by="agent 3")
-    assert len(logged_c) == 4 and len(logged_a) == 4, (logged_c, logged_a)
+    assert len(logged_c) == 6 and len(logged_a) == 4, (logged_c, logged_a)
     for e in logged_c + logged_a:
         # the kernel's address of the connection, or the IP from the key check
         assert e["address"].startswith(f"{stranger.address}:") or (
@@ -380,37 +382,65 @@ def test_a_keyed_swarm_runs_on_namespace_hosts_and_refuses_a_stranger(lab, proce
     _, stderr = coord.communicate(timeout=120)
     assert coord.returncode == 130, stderr
     summary = json.loads((attacked / "summary.json").read_text())
-    assert summary["refused_peers"] == 8, summary["refused_peers"]
+    assert summary["refused_peers"] == 10, summary["refused_peers"]
     assert summary["messages"]["lost_transport"] == 0
     assert not [e for e in run_events(attacked) if e["event"] == "hello-refused"]
     wait_until_empty(lab_, servers, 30.0)
 
-    # the same scenario with keys, to a budget past every sample of the interrupted run
-    # (the grid only: an interrupted agent also samples where it stopped)
+    # The states: rounds mode is deterministic, and the lockstep engine (one process, no
+    # sockets) reproduces a multi-process run bit for bit (tests/integration/
+    # test_conformance.py); it replays the scenario to the last iteration every agent of the
+    # interrupted run sampled on the grid (an interrupted agent also samples where it stopped).
     attacked_x = [
         {k: v for k, v in samples_x(attacked, i).items() if k % 10 == 0} for i in range(6)
     ]
     reached = min(max(x) for x in attacked_x)
+    replay = tmp_path / "lockstep"
+    scenario = write_scenario(
+        tmp_path / "replay.toml", f"iterations = {reached}", mode="rounds", extra=EVERY
+    )
+    assert coordinator.run(scenario, out=replay, engine="lockstep").exit_code == 0
+    for i in range(6):
+        replay_x = samples_x(replay, i)
+        common = sorted(set(replay_x) & set(attacked_x[i]))
+        assert common == sorted(k for k in attacked_x[i] if k <= reached), i
+        assert common[-1] == reached, (i, common[-3:])
+        for k in common:  # bit for bit: the stranger changed nothing
+            assert replay_x[k] == attacked_x[i][k], (i, k)
+    wait_until_empty(lab_, servers, 30.0)
+
+
+def test_a_keyed_swarm_runs_to_its_budget_on_namespace_hosts(lab, processes, tmp_path):
+    """CURVE on every channel across the namespaces, agents started over ssh with each host's
+    packed keys, to the budget; states bit for bit those of the lockstep engine."""
+    lab_, servers = lab
+    keys, per_host = packed_keys(tmp_path)
+    inv = write_inventory(tmp_path / "hosts.toml", lab_, servers, keys=per_host)
     clean = tmp_path / "clean"
     scenario = write_scenario(
-        tmp_path / "clean.toml", f"iterations = {reached}", mode="rounds", extra=EVERY
+        tmp_path / "clean.toml", "iterations = 300", mode="rounds", extra=EVERY
     )
     coord = start_coordinator(
         lab_, processes, str(scenario), "--inventory", str(inv), "--keys", str(keys),
         "--out", str(clean), "--quiet", "--json",
     )  # fmt: skip
-    stdout, stderr = coord.communicate(timeout=600)
+    stdout, stderr = coord.communicate(timeout=150)
     assert coord.returncode == 0, stderr
-    clean_summary = json.loads(stdout)
-    assert clean_summary["exit"] == "budget" and clean_summary["refused_peers"] == 0
-    for i in range(6):
-        clean_x = samples_x(clean, i)
-        common = sorted(set(clean_x) & set(attacked_x[i]))
-        assert common == sorted(k for k in attacked_x[i] if k <= reached), i
-        assert common[-1] == reached, (i, common[-3:])
-        for k in common:  # bit for bit: the stranger changed nothing
-            assert clean_x[k] == attacked_x[i][k], (i, k)
+    summary = json.loads(stdout)
+    assert summary["exit"] == "budget" and summary["refused_peers"] == 0
+    assert summary["messages"]["lost_transport"] == 0
+    run = json.loads((clean / "run.json").read_text())
+    assert run["security"]["curve"] is True
+    assert {h["name"]: h["keys"] for h in run["hosts"]} == {k: str(v) for k, v in per_host.items()}
+    for name, agents in AGENTS.items():
+        for i in agents:
+            assert run["agents"][i]["endpoint"].startswith(f"tcp://{lab_[name].address}:")
     wait_until_empty(lab_, servers, 30.0)
+    replay = tmp_path / "lockstep"
+    assert coordinator.run(scenario, out=replay, engine="lockstep").exit_code == 0
+    for i in range(6):
+        clean_x, replay_x = samples_x(clean, i), samples_x(replay, i)
+        assert max(clean_x) == 300 and clean_x == {k: replay_x[k] for k in clean_x}, i
 
 
 def test_a_loose_secret_key_on_a_host_is_refused_there(lab, processes, tmp_path):
