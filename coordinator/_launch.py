@@ -9,6 +9,7 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 from typing import Any
 
 __all__ = ["ForkServer"]
@@ -35,6 +36,8 @@ class ForkServer:
         self._pending: list[dict[str, Any]] = []
         self.pgid: int | None = None
         self.alive: dict[int, int] = {}  # pid -> agent
+        #: pid -> a pidfd of that very process (Linux), opened when the server reported it
+        self._pidfds: dict[int, int] = {}
         deadline = time.monotonic() + 30.0
         while self.pgid is None:
             for ev in self.events(timeout=0.05):
@@ -62,10 +65,45 @@ class ForkServer:
             }
         )
 
-    def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> None:
-        # Signal directly: the coordinator owns the timing of process faults.
-        with contextlib.suppress(ProcessLookupError, PermissionError):
-            os.kill(pid, sig)
+    def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> bool:
+        """Signal one of the server's own agents; False (nothing sent) unless ``pid`` is a
+        live child it reported spawning for ``agent``.
+
+        On Linux through a pidfd opened when the server reported the child (and checked to
+        be the server's child then): it names that very process, so a pid reused by another
+        process after the agent's end is never hit, and the signal is sent now (the
+        coordinator owns the timing of process faults). Elsewhere the server signals it, and
+        only a child it has not yet reaped."""
+        if self.alive.get(pid) != agent or pid <= 1:
+            return False
+        fd = self._pidfds.get(pid)
+        if fd is not None:
+            with contextlib.suppress(ProcessLookupError):
+                signal.pidfd_send_signal(fd, sig)
+        else:
+            self._send({"op": "kill", "pid": int(pid), "signal": int(sig)})
+        return True
+
+    def _pin(self, pid: int) -> None:
+        """Hold a pidfd of a child the server just reported, if it is the server's child."""
+        try:
+            fd = os.pidfd_open(pid)
+        except (AttributeError, OSError):  # no pidfds here, or it is gone already
+            return
+        try:
+            stat = Path(f"/proc/{pid}/stat").read_text()
+            ppid = int(stat.rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            ppid = -1
+        if ppid != self.proc.pid:
+            os.close(fd)
+            return
+        self._pidfds[pid] = fd
+
+    def _unpin(self, pid: int) -> None:
+        fd = self._pidfds.pop(pid, None)
+        if fd is not None:
+            os.close(fd)
 
     def lost(self) -> str | None:
         """Why the run cannot go on, if the server died (its agents died with it)."""
@@ -93,8 +131,10 @@ class ForkServer:
             ev = json.loads(line)
             if ev["op"] == "spawned":
                 self.alive[int(ev["pid"])] = int(ev["agent"])
+                self._pin(int(ev["pid"]))
             elif ev["op"] == "exited":
                 ev["agent"] = self.alive.pop(int(ev["pid"]), None)
+                self._unpin(int(ev["pid"]))
             out.append(ev)
         return out
 
@@ -126,3 +166,5 @@ class ForkServer:
             self.proc.wait(timeout=grace)
         if self.proc.stdout is not None:
             self.proc.stdout.close()
+        for pid in list(self._pidfds):
+            self._unpin(pid)

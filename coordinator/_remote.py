@@ -177,12 +177,17 @@ class RemoteLauncher:
             },
         )
 
-    def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> None:
-        """Signal a remote agent (its host's server signals only its own children)."""
+    def kill(self, pid: int, sig: int = signal.SIGKILL, *, agent: int | None = None) -> bool:
+        """Signal a remote agent on its own host: only a pid that host's server reported
+        spawning for ``agent`` and that still lives (the server checks its children again).
+        False when nothing was sent."""
         if agent is None:
-            return
-        s = self.sessions[self.inventory.host_of(agent).name]
-        self._send(s, {"op": "kill", "pid": int(pid), "signal": int(sig)})
+            return False
+        host = self.inventory.host_of(agent).name
+        if self.alive.get((host, int(pid))) != agent:
+            return False
+        self._send(self.sessions[host], {"op": "kill", "pid": int(pid), "signal": int(sig)})
+        return True
 
     def events(self, timeout: float = 0.0) -> list[dict[str, Any]]:
         now = time.monotonic()

@@ -11,7 +11,6 @@ import getpass
 import os
 import platform
 import shutil
-import signal
 import socket
 import time
 from collections.abc import Callable
@@ -22,6 +21,7 @@ from typing import Any
 import numpy as np
 import zmq
 
+from coordinator import _process_faults as process_faults
 from coordinator._interrupts import EXIT_INTERRUPTED, Interrupts, abandon_run
 from coordinator._ipc_dirs import make_ipc_dir, remove_stale_ipc_dirs
 from coordinator._launch import ForkServer
@@ -131,7 +131,10 @@ class _Agent:
     id: int
     epoch: int = -1
     ident: bytes | None = None
+    #: the process its fork server started (from the server's reply, never from the network)
     pid: int | None = None
+    #: the pid its latest hello claimed (only compared with ``pid``, never signalled)
+    claimed_pid: int | None = None
     host: str | None = None
     endpoint: str | None = None
     ready: bool = False
@@ -242,6 +245,7 @@ class Coordinator:
                 "id": a.id,
                 "epoch": a.epoch,
                 "pid": a.pid,
+                "claimed_pid": a.claimed_pid,
                 "host": a.host,
                 "endpoint": a.endpoint,
                 # agent clock minus coordinator clock, and the round trip it was taken from
@@ -459,6 +463,8 @@ class Coordinator:
 
     def hello_refusal(self, i: int, msg: dict[str, Any], user: str | None) -> str | None:
         """Why this hello may not join (versions, key), or None."""
+        if msg["pid"] <= 1:  # kill(-1), kill(0), kill(1): never a process of one agent
+            return f"agent {i} claims pid {msg['pid']}, which is no agent's process"
         if msg["version"] != VERSION or msg["protocol"] != PROTOCOL:
             return (
                 f"agent {i} runs swarmrig {msg['version']} (protocol {msg['protocol']}); "
@@ -493,11 +499,14 @@ class Coordinator:
             return
         restart = a.epoch >= 0
         a.epoch += 1
+        if a.ident is not None:  # what the old incarnation still sends is no longer its
+            self.by_ident.pop(a.ident, None)
         a.ident = ident
         self.by_ident[ident] = i
         a.host = str(msg["host"])
-        if not self.opt.launch_local or a.pid is None or restart:
-            a.pid = int(msg["pid"])
+        a.claimed_pid = int(msg["pid"])
+        if self.fork is not None:
+            self.on_fork_events()  # the spawned reply for this incarnation, if not yet read
         a.dead = a.finished = a.ready = a.running = False
         a.pings.clear()
         a.rtt_best = float("inf")
@@ -529,6 +538,7 @@ class Coordinator:
                 agent=i,
                 epoch=a.epoch,
                 pid=a.pid,
+                claimed_pid=a.claimed_pid,
                 start_iteration=start_iteration,
                 state="last" if start_state is not None else "initial",
             )
@@ -794,57 +804,15 @@ class Coordinator:
             links=[list(link) for link in tf["links"]],
         )
 
+    # process faults: coordinator._process_faults decides whom it may signal
     def crash(self, i: int, pf: dict[str, Any]) -> None:
-        a = self.agents[i]
-        if a.pid is None or a.dead:
-            return
-        a.crashed_on_purpose = True
-        a.restart_state = pf["params"].get("restart_state", "initial")
-        pid = a.pid
-        self.signal_agent(a, signal.SIGKILL)
-        a.record.alive = False
-        self.event("crash", fault=pf["index"], agent=i, epoch=a.epoch, pid=pid, signal="SIGKILL")
-        after = pf["params"].get("restart_after_s")
-        if after is not None:
-            a.restart_pending = True
-            self.schedule(
-                self.now_s() + float(after), "restart", lambda a=a, pf=pf: self.restart(a, pf)
-            )
-
-    def restart(self, a: _Agent, pf: dict[str, Any]) -> None:
-        if self.fork is None or self.stop_requested:
-            return
-        self.event("restart", fault=pf["index"], agent=a.id, previous_epoch=a.epoch)
-        a.endpoint = None
-        self.spawn(a)
+        process_faults.crash(self, i, pf)
 
     def pause(self, i: int, pf: dict[str, Any], stop: bool) -> None:
-        a = self.agents[i]
-        if a.pid is None or a.dead:
-            return
-        self.signal_agent(a, signal.SIGSTOP if stop else signal.SIGCONT)
-        self.event(
-            "pause" if stop else "resume",
-            fault=pf["index"],
-            agent=i,
-            pid=a.pid,
-            signal="SIGSTOP" if stop else "SIGCONT",
-        )
-
-    def signal_agent(self, a: _Agent, sig: int) -> None:
-        """Signal an agent through whoever started it (a remote host's server for remote
-        agents); agents started by hand are signalled by their pid."""
-        assert a.pid is not None
-        if self.fork is not None:
-            self.fork.kill(a.pid, sig, agent=a.id)
-            return
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(a.pid, sig)
+        process_faults.pause(self, i, pf, stop)
 
     def slow(self, i: int, pf: dict[str, Any], factor: float) -> None:
-        a = self.agents[i]
-        self.send(a, "process", action="slow", factor=factor)
-        self.event("slow", fault=pf["index"], agent=i, factor=factor)
+        process_faults.slow(self, i, pf, factor)
 
     # -- run phase ---------------------------------------------------------------------
     def check_stop_request(self, before_go: bool = False) -> None:

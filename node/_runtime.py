@@ -21,6 +21,7 @@ import socket
 import sys
 import time
 import traceback
+from collections import deque
 from collections.abc import Iterator, Mapping
 from typing import Any
 
@@ -58,6 +59,8 @@ VERSION = "0.1.0"
 DATA_HEARTBEAT_MS = 250
 #: an estimate beyond this (or not finite) means the run diverged
 DIVERGED = 1e12
+#: control messages kept while the agent pauses itself (beats are not kept); beyond: refused
+HELD_MAX = 10000
 
 
 #: frames taken off the data socket before they are handled as one batch
@@ -189,6 +192,8 @@ class Node:
         self.samples: list[list[Any]] = []
         self.stop_reason: str | None = None
         self.slow_factor = 1.0
+        #: control frames that came while paused, handled on resume (see hold)
+        self.held: deque[bytes] = deque()
         self.start_node = 0.0
         #: restarted in-neighbours to report as heard: sender -> epoch
         self.to_report: dict[int, int] = {}
@@ -225,18 +230,71 @@ class Node:
             self.apply_directive(msg)
             return None
         if kind == "process":
-            if msg["action"] == "slow":
-                self.slow_factor = float(msg["factor"])
+            self.process_fault(msg)
             return None
         if kind == "stop":
             self.stop_reason = msg["reason"]
         return msg
 
+    def process_fault(self, msg: Mapping[str, Any]) -> None:
+        """A process fault carried out here, on the agent's own host: the coordinator signals
+        only processes its fork server started, and tells an agent that joined by itself
+        (``--no-launch``) to slow down, crash or pause itself instead."""
+        action = msg["action"]
+        if action == "slow":
+            self.slow_factor = float(msg["factor"])
+        elif action == "crash":
+            after = msg["restart_after_s"]
+            if after is None:
+                sys.stderr.flush()
+                signal.raise_signal(signal.SIGKILL)  # this process, whatever it was told
+            raise SelfCrash(max(0.0, float(after)))
+        elif action == "pause":
+            self.hold()
+        # "resume" while not paused: nothing to do
+
+    def hold(self) -> None:
+        """Pause on the coordinator's word until ``resume``: no step, no data sent or read
+        (frames queue up in the socket as for a stopped process). Control messages that come
+        meanwhile are kept, bounded, and handled on resume; ``stop`` ends the pause."""
+        while True:
+            if not self.ctl.poll(100):
+                if self.coordinator_lost():
+                    return
+                continue
+            frame = self.ctl.recv()
+            try:
+                msg = decode_control(frame)
+            except WireError:
+                self.refused_control += 1
+                continue
+            self.last_ctl = self.clock()
+            kind = msg["t"]
+            if kind == "beat":
+                continue
+            if kind == "process" and msg["action"] == "resume":
+                return
+            if len(self.held) < HELD_MAX:
+                self.held.append(frame)
+            else:
+                self.refused_control += 1
+            if kind == "stop":
+                return
+
+    def next_ctl(self, timeout_ms: int) -> bytes | None:
+        """The next control frame: one kept during a pause first, else from the socket."""
+        if self.held:
+            return self.held.popleft()
+        if self.ctl.poll(timeout_ms):
+            return self.ctl.recv()
+        return None
+
     def wait_ctl(self, *kinds: str) -> dict[str, Any]:
         """Block for one of ``kinds`` (answering pings meanwhile); fail on coordinator loss."""
         while True:
-            if self.ctl.poll(100):
-                msg = self.handle_ctl(self.ctl.recv())
+            frame = self.next_ctl(100)
+            if frame is not None:
+                msg = self.handle_ctl(frame)
                 if msg is None:
                     continue
                 if msg["t"] in kinds:
@@ -523,8 +581,8 @@ class Node:
 
     def pending_control(self) -> Iterator[dict[str, Any]]:
         """The control messages waiting now, peer-table updates already applied."""
-        while self.ctl.poll(0):
-            msg = self.handle_ctl(self.ctl.recv())
+        while (frame := self.next_ctl(0)) is not None:
+            msg = self.handle_ctl(frame)
             if msg is None:
                 continue
             if msg["t"] == "peers":
@@ -759,6 +817,14 @@ class Node:
         self.ctx.term()
 
 
+class SelfCrash(BaseException):
+    """The coordinator told this agent to crash and join again after ``after`` seconds: the
+    incarnation ends at once (no final report, sockets closed), past every handler."""
+
+    def __init__(self, after: float) -> None:
+        self.after = after
+
+
 class _Diverged(Exception):
     def __init__(self, iteration: int) -> None:
         self.iteration = iteration
@@ -800,11 +866,21 @@ def main(
         except KeyMaterialError as exc:
             print(f"agent {agent}: {exc}", file=sys.stderr)
             return 2
-    node = Node(
-        join,
-        agent,
-        heartbeat_timeout=heartbeat_timeout,
-        clock=_shifted_clock(agent),
-        keys=agent_keys,
-    )
-    return node.run()
+    while True:
+        node = Node(
+            join,
+            agent,
+            heartbeat_timeout=heartbeat_timeout,
+            clock=_shifted_clock(agent),
+            keys=agent_keys,
+        )
+        try:
+            return node.run()
+        except SelfCrash as crash:
+            print(
+                f"agent {agent}: crashed on the coordinator's word; joining again in "
+                f"{crash.after:g} s",
+                file=sys.stderr,
+                flush=True,
+            )
+            time.sleep(crash.after)

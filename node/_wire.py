@@ -390,7 +390,9 @@ CONTROL_SCHEMA: dict[str, dict[str, type | tuple[type, ...]]] = {
     "ping": {"seq": int, "t_coord": _NUM},
     "go": {"start_node": _NUM, "iteration": int},
     "directive": {"directive": int, "action": str, "fault": dict},
-    "process": {"action": str, "factor": _NUM},
+    # a process fault the agent carries out itself (slow, crash, pause, resume): agents that
+    # joined by themselves are never signalled by the coordinator (coordinator._process_faults)
+    "process": {"action": str, "factor": _NUM, "restart_after_s": (int, float, type(None))},
     "stop": {"reason": str},
     "beat": {},
     "refuse": {"reason": str},

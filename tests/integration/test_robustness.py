@@ -139,7 +139,7 @@ def assert_agents_unaffected(out: Path, n: int) -> None:
 
 # ----------------------------------------------------------------------- control plane
 
-HELLO = {"host": "intruder", "pid": 1, "version": "0.1.0", "protocol": PROTOCOL}
+HELLO = {"host": "intruder", "pid": 4242424, "version": "0.1.0", "protocol": PROTOCOL}
 
 
 def wire_junk() -> list[bytes]:

@@ -39,7 +39,7 @@ N = 4
 ITERATIONS = 300
 TRIES = 3
 WAIT_S = 120.0  # only a bound on waiting for events; nothing here is timed
-HELLO = {"host": "intruder", "pid": 1, "version": "0.1.0", "protocol": PROTOCOL}
+HELLO = {"host": "intruder", "pid": 4242424, "version": "0.1.0", "protocol": PROTOCOL}
 _END = (
     zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL

@@ -422,7 +422,7 @@ CONTROL_SAMPLES: dict[str, dict[str, Any]] = {
     "ping": {"seq": 0, "t_coord": 1.0},
     "go": {"start_node": 12.25, "iteration": 0},
     "directive": {"directive": 7, "action": "add", "fault": {"fault": {}, "from": [1]}},
-    "process": {"action": "slow", "factor": 3},
+    "process": {"action": "slow", "factor": 3, "restart_after_s": None},
     "stop": {"reason": "budget"},
     "beat": {},
     "refuse": {"reason": "agent id 99 is not in 0..3"},

@@ -1,0 +1,235 @@
+"""Attacks on a running swarm, on loopback with real processes: the coordinator signals only
+processes its own fork server started (coordinator._process_faults).
+
+A stranger that joins a ``--no-launch`` coordinator under an agent's id and claims the pid of
+an unrelated process (a ``sleep`` this test started) gets a crash and a pause fault: the
+sleep is never stopped, continued or killed (the kernel's wait status of our own child says
+so, not the coordinator's word), events.jsonl records each refusal with the claimed id and
+pid, and the stranger is told to crash and pause itself instead. Hellos claiming pid -1, 0
+or 1 (``kill`` would reach every process of the user or of the group) are refused.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import pytest
+import zmq
+
+from coordinator._api import load
+from coordinator._run import RunOptions, execute
+from node._wire import PROTOCOL, decode_control, encode_control
+from tests.integration.test_robustness import Sockets, events, receive, sockets  # noqa: F401
+
+pytestmark = pytest.mark.integration
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _scenario(path: Path, agents: int, body: str) -> Path:
+    path.write_text(
+        f"""
+[swarm]
+name = "attacked"
+agents = {agents}
+seed = 5
+{body}
+
+[topology]
+shape = "ring"
+
+[network]
+transport = "tcp"
+host = "127.0.0.1"
+"""
+    )
+    return path
+
+
+def _agent(processes: Any, endpoint: str, agent: int, claim_pid: int | None = None) -> Any:
+    """``swarmrig node`` for one agent; with ``claim_pid``, a stranger running the same
+    agent code whose hello claims that pid instead of its own."""
+    if claim_pid is None:
+        cmd = ["-m", "coordinator.cli", "node", "--join", endpoint, "--agent", str(agent)]
+    else:
+        code = (
+            "import os, sys; import node._runtime as r; "
+            f"os.getpid = lambda: {claim_pid}; sys.exit(r.main({endpoint!r}, {agent}))"
+        )
+        cmd = ["-c", code]
+    p = subprocess.Popen(
+        [sys.executable, *cmd],
+        start_new_session=True,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    processes.groups.add(p.pid)
+    processes.popen.append(p)
+    return p
+
+
+class _Coordinator(threading.Thread):
+    """A ``--no-launch`` coordinator run through the Python API in a thread, with a join
+    deadline generous enough for agents started slowly on a loaded machine."""
+
+    def __init__(self, scenario: Path, out: Path) -> None:
+        super().__init__(daemon=True)
+        self.endpoint = f"tcp://127.0.0.1:{_free_port()}"
+        self.options = RunOptions(
+            out=out, listen=self.endpoint, launch_local=False, handshake_timeout=300.0
+        )
+        self.swarm = load(scenario)
+        self.out = out
+        self.result: Any = None
+        self.error: BaseException | None = None
+        self.start()
+        deadline = time.monotonic() + 60.0
+        while time.monotonic() < deadline:  # bound (run.json names it): agents may come
+            assert self.is_alive(), self.error
+            with contextlib.suppress(FileNotFoundError, json.JSONDecodeError):
+                if json.loads((out / "run.json").read_text()).get("coordinator"):
+                    return
+            time.sleep(0.02)
+        raise AssertionError(f"{out}/run.json never named the coordinator's endpoint")
+
+    def run(self) -> None:
+        try:
+            self.result = execute(self.swarm, self.options)
+        except BaseException as exc:  # reported by finish()
+            self.error = exc
+
+    def finish(self) -> Any:
+        self.join(300.0)
+        assert not self.is_alive(), "the coordinator did not end"
+        assert self.error is None, repr(self.error)
+        assert self.result.exit_code == 0, self.result.summary["exit"]
+        return self.result
+
+
+def _state(pid: int) -> str:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("State:"):
+            return line.split()[1]
+    raise AssertionError(f"/proc/{pid}/status has no State line")
+
+
+@pytest.fixture
+def bystander() -> Any:
+    """An unrelated process of ours whose pid a stranger will claim."""
+    p = subprocess.Popen(["sleep", "600"])
+    try:
+        yield p
+    finally:
+        p.kill()
+        p.wait(timeout=10)
+
+
+def test_a_stranger_claiming_another_pid_gets_no_signal(processes, bystander, tmp_path):
+    n, victim = 3, 0
+    sc = _scenario(
+        tmp_path / "s.toml",
+        n,
+        'mode = "async"\nseconds = 3.0\n\n[timing]\nperiod_ms = 5.0\n\n'
+        '[[fault]]\nkind = "pause"\nagents = [0]\nstart_s = 0.3\nduration_s = 0.5\n\n'
+        '[[fault]]\nkind = "crash"\nagents = [0]\nstart_s = 1.2\n',
+    )
+    out = tmp_path / "run"
+    coord = _Coordinator(sc, out)
+    stranger = _agent(processes, coord.endpoint, victim, claim_pid=bystander.pid)
+    honest = [_agent(processes, coord.endpoint, i) for i in range(1, n)]
+    coord.finish()
+
+    # The bystander: alive, sleeping, and the kernel has no stop, continue or exit to report.
+    assert bystander.poll() is None
+    assert _state(bystander.pid) == "S", _state(bystander.pid)
+    flags = os.WNOHANG | os.WUNTRACED | os.WCONTINUED
+    assert os.waitpid(bystander.pid, flags) == (0, 0)
+
+    ev = events(out)
+    refused = [e for e in ev if e["event"] == "signal-refused"]
+    assert [e["action"] for e in refused] == ["pause", "resume", "crash"], refused
+    for e in refused:
+        assert e["agent"] == victim and e["claimed_pid"] == bystander.pid, e
+        assert e["instead"] == "directive" and "not started by this coordinator" in e["reason"]
+    # ... and the stranger was told to do it itself: it paused, resumed, then killed itself.
+    assert stranger.wait(timeout=30) == -signal.SIGKILL, stranger.stderr.read()[-2000:]
+    crash = next(e for e in ev if e["event"] == "crash")
+    assert crash["agent"] == victim and crash["pid"] is None and crash["directive"] is True
+    for p in honest:
+        assert p.wait(timeout=30) == 0, p.stderr.read()[-2000:]
+    run = json.loads((out / "run.json").read_text())
+    entry = run["agents"][victim]
+    assert entry["pid"] is None and entry["claimed_pid"] == bystander.pid, entry
+
+
+def test_hellos_claiming_pid_minus_one_zero_or_one_are_refused(
+    processes,
+    sockets,  # noqa: F811 (the fixture imported above)
+    tmp_path,
+):
+    n = 3
+    sc = _scenario(tmp_path / "s.toml", n, 'mode = "rounds"\niterations = 50\n')
+    out = tmp_path / "run"
+    coord = _Coordinator(sc, out)
+    for pid in (-1, 0, 1):
+        d = sockets.socket(zmq.DEALER)
+        d.connect(coord.endpoint)
+        hello = {"host": "intruder", "pid": pid, "version": "0.1.0", "protocol": PROTOCOL}
+        d.send(encode_control("hello", agent=0, **hello))
+        refusal = decode_control(receive(d, f"refusal of pid {pid}"))
+        assert refusal["t"] == "refuse" and f"pid {pid}" in refusal["reason"], refusal
+    # The refused hellos took no slot: the real agents join and the run completes.
+    agents = [_agent(processes, coord.endpoint, i) for i in range(n)]
+    coord.finish()
+    for p in agents:
+        assert p.wait(timeout=30) == 0, p.stderr.read()[-2000:]
+    refused = [e for e in events(out) if e["event"] == "hello-refused"]
+    assert [(e["agent"], e["pid"]) for e in refused] == [(0, -1), (0, 0), (0, 1)], refused
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["exit"] == "budget" and summary["refused_peers"] == 3, summary
+
+
+def test_an_agent_started_by_hand_crashes_and_rejoins_by_itself(processes, tmp_path):
+    # Nothing forked it, so nothing here may signal it: it ends its own incarnation and joins
+    # again after restart_after_s, under a new epoch, in the same process.
+    n, k = 3, 1
+    sc = _scenario(
+        tmp_path / "s.toml",
+        n,
+        'mode = "async"\nseconds = 3.0\n\n[timing]\nperiod_ms = 5.0\n\n'
+        '[[fault]]\nkind = "crash"\nagents = [1]\nstart_s = 0.5\nrestart_after_s = 0.5\n'
+        'restart_state = "last"\n',
+    )
+    out = tmp_path / "run"
+    coord = _Coordinator(sc, out)
+    agents = [_agent(processes, coord.endpoint, i) for i in range(n)]
+    coord.finish()
+    for p in agents:
+        assert p.wait(timeout=30) == 0, p.stderr.read()[-2000:]
+    ev = events(out)
+    names = [e["event"] for e in ev]
+    order = [names.index(x) for x in ("signal-refused", "crash", "restart", "agent-rejoined")]
+    assert order == sorted(order), names
+    rejoined = next(e for e in ev if e["event"] == "agent-rejoined")
+    assert rejoined["agent"] == k and rejoined["epoch"] == 1 and rejoined["state"] == "last"
+    assert rejoined["claimed_pid"] == agents[k].pid and rejoined["pid"] is None
+    assert "agent-lost" not in names and "agent-failed" not in names, names
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["exit"] == "budget", summary["exit"]
+    run = json.loads((out / "run.json").read_text())
+    assert run["agents"][k]["epoch"] == 1
