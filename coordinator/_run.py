@@ -22,6 +22,7 @@ import numpy as np
 import zmq
 
 from coordinator import _process_faults as process_faults
+from coordinator._inbox import CONTROL_RCVHWM, RefusalLog, take_turn
 from coordinator._interrupts import EXIT_INTERRUPTED, Interrupts, abandon_run
 from coordinator._ipc_dirs import make_ipc_dir, remove_stale_ipc_dirs
 from coordinator._launch import ForkServer
@@ -220,6 +221,8 @@ class Coordinator:
         self.refused_by_agent: dict[int, int] = {}
         self._gate_seen = 0
         self.refusals_logged = 0
+        #: refused control traffic: a few lines per kind and sender, the rest counted
+        self.refusals = RefusalLog(self.event, self.clock)
 
     # -- helpers -----------------------------------------------------------------------
     def now_s(self) -> float:
@@ -266,7 +269,8 @@ class Coordinator:
         # above it is cut off by libzmq before it can fill memory.
         self.router.setsockopt(zmq.MAXMSGSIZE, 4 * MAX_CONTROL_FRAME)
         self.router.setsockopt(zmq.SNDHWM, 100000)
-        self.router.setsockopt(zmq.RCVHWM, 0)
+        # bounded per connection: a flooding peer is held back by libzmq, not queued here
+        self.router.setsockopt(zmq.RCVHWM, CONTROL_RCVHWM)
         if self.keys is not None:
             allow = self.keys.allow
             self.gate = Gatekeeper(self.ctx)
@@ -367,7 +371,7 @@ class Coordinator:
         try:
             msg = decode_control(frame)
         except WireError as exc:
-            self.event("control-rejected", error=str(exc))
+            self.refusals.refuse("control-rejected", str(exc), ident, error=str(exc))
             return
         kind = msg["t"]
         if kind == "hello":
@@ -428,7 +432,7 @@ class Coordinator:
     def refuse(self, ident: bytes, reason: str, **fields: Any) -> None:
         """Tell a would-be agent no, and record it; a peer already gone is no error."""
         self.refused_hellos += 1
-        self.event("hello-refused", reason=reason, **fields)
+        self.refusals.refuse("hello-refused", reason, ident, reason=reason, **fields)
         with contextlib.suppress(zmq.ZMQError):
             self.router.send_multipart(  # type: ignore[union-attr]
                 [ident, encode_control("refuse", reason=reason)], zmq.NOBLOCK
@@ -565,25 +569,29 @@ class Coordinator:
                 self.send(b, "peers", peers={a.id: [a.endpoint, a.epoch]})
 
     def pump(self, timeout_ms: int) -> None:
+        """One loop turn of control traffic: bounded in messages and time (coordinator._inbox),
+        so that heartbeats and the timeline run on time under a flood."""
         assert self.router is not None
         if self.router.poll(timeout_ms):
-            while True:
-                user = None
-                try:
-                    if self.keys is None:
-                        ident, frame = self.router.recv_multipart(zmq.NOBLOCK)
-                    else:  # the key the sender authenticated with rides on the frame
-                        ident_f, frame_f = self.router.recv_multipart(zmq.NOBLOCK, copy=False)
-                        ident, frame = ident_f.bytes, frame_f.bytes
-                        user = frame_f.get("User-Id")
-                except zmq.Again:
-                    break
-                except ValueError:  # not a two-frame message: not from one of our agents
-                    self.event("envelope-rejected", error="message is not [identity, frame]")
-                    continue
-                self.on_message(ident, frame, user)
+            take_turn(
+                self.router,
+                self.on_message,
+                self.bad_envelope,
+                keyed=self.keys is not None,
+                clock=self.clock,
+            )
+        self.refusals.tick()
         self.take_refusals()
         self.on_fork_events()
+
+    def bad_envelope(self, ident: bytes | None, parts: int) -> None:
+        """Not a two-frame message: not from one of our agents."""
+        self.refusals.refuse(
+            "envelope-rejected",
+            "message is not [identity, frame]",
+            ident,
+            error=f"message is not [identity, frame] ({parts} frames)",
+        )
 
     def handshake(self) -> None:
         timeout = self.opt.handshake_timeout or (20.0 + 0.1 * self.n)
@@ -945,6 +953,7 @@ class Coordinator:
             **figures,
             "messages": totals.as_dict(),
             "refused_peers": self.refused_total,
+            "refused_control": self.refusals.total,
             "exit": self.exit_reason,
             "run_dir": str(self.dir.path),
         }
@@ -1054,6 +1063,7 @@ class Coordinator:
         finally:
             self.cleanup()
         self.set_phase("results")
+        self.refusals.close()
         self.event("stop", reason=self.exit_reason)
         self.settle_exit()
         try:

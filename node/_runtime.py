@@ -65,6 +65,14 @@ HELD_MAX = 10000
 
 #: frames taken off the data socket before they are handled as one batch
 BATCH_LIMIT = 4096
+#: largest message a subscriber may send to our PUB. Our own subscribers send one message,
+#: the empty subscription (1 byte); the limit also covers the security handshake's commands
+#: (a CURVE handshake needed 276 bytes with libzmq 4.3.5, measured). A peer above it is
+#: disconnected, so no subscription costs more than this many bytes of subscription tree.
+SUBSCRIPTION_MAX = 512
+#: subscription messages queued per subscriber connection before libzmq stops reading it
+#: (common practice, not from a source)
+SUBSCRIPTION_HWM = 1000
 #: test-only: "ID=SECONDS,..." shifts those agents' clocks (checks the offset estimate)
 CLOCK_SHIFT_ENV = "SWARMRIG_TEST_CLOCK_SHIFT"
 
@@ -364,6 +372,8 @@ class Node:
         self.pub = self.ctx.socket(zmq.PUB)
         self.pub.setsockopt(zmq.LINGER, 0)
         self.pub.setsockopt(zmq.SNDHWM, int(plan.get("hwm", 100000)))
+        self.pub.setsockopt(zmq.MAXMSGSIZE, SUBSCRIPTION_MAX)
+        self.pub.setsockopt(zmq.RCVHWM, SUBSCRIPTION_HWM)
         subscribers, self.publisher_keys = data_plane_keys(plan, self.keys, self.agent)
         if self.keys is not None:
             assert self.gate is not None
@@ -382,9 +392,10 @@ class Node:
         self.sub = self.ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, int(plan.get("hwm", 100000)))
-        # Generous on purpose: at the limit libzmq drops the connection for good, while the
-        # codec refuses (and counts) any frame above MAX_DATA_FRAME and keeps the link.
-        self.sub.setsockopt(zmq.MAXMSGSIZE, 64 * MAX_DATA_FRAME)
+        # Above the codec's bound on purpose: at the limit libzmq drops the connection, while
+        # the codec refuses (and counts) a frame above MAX_DATA_FRAME and keeps the link;
+        # twice the bound keeps what a peer can queue here at hwm * 2 MiB at most.
+        self.sub.setsockopt(zmq.MAXMSGSIZE, 2 * MAX_DATA_FRAME)
         self.sub.setsockopt(zmq.SUBSCRIBE, b"")
         if plan.get("transport") != "ipc":
             _detect_dead_links(self.pub, self.sub)

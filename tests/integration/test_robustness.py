@@ -364,7 +364,7 @@ def test_an_oversized_data_frame_is_refused_and_delivery_goes_on(
     node: tuple[Node, zmq.Socket, zmq.Socket],
 ) -> None:
     # A frame just above the codec's MAX_DATA_FRAME is still below the SUB socket's
-    # ZMQ_MAXMSGSIZE (64 times larger), so the connection stays up: the codec refuses the
+    # ZMQ_MAXMSGSIZE (twice as large), so the connection stays up: the codec refuses the
     # frame, and the frames after it are delivered on the same connection. (No reconnect
     # happens or is needed here.) The link's accounting still closes.
     n, pub, _ = node
