@@ -604,10 +604,18 @@ def _front_tables(spec: StudySpec, out: Path, jobs: list[tuple[_Job, Any]]) -> N
         refpoint = spec.front["reference_point"]
         how = "given in [front].reference_point"
         if refpoint is None:
-            both = np.vstack([ref_pts, reached[ok]]) if ok.any() else ref_pts
+            # one point for every front of the seed (with and without faults), so their
+            # hypervolumes compare
+            every = front[front["seed"] == seed]
+            pts = every[[f"reference_f{g}" for g in range(m)]].to_numpy(float)
+            got = every[[f"reached_f{g}" for g in range(m)]].to_numpy(float)
+            both = np.vstack([pts, got[np.all(np.isfinite(got), axis=1)]])
             hi, lo = both.max(axis=0), both.min(axis=0)
             refpoint = (hi + 0.1 * np.maximum(hi - lo, 1e-12)).tolist()
-            how = "the worst value of each group over both fronts plus 10% of its range (common practice)"
+            how = (
+                "the worst value of each group over the reference and reached fronts of the"
+                " seed (with and without faults) plus 10% of its range (common practice)"
+            )
         hv_ref = hypervolume(ref_pts, refpoint)
         hv_reached = hypervolume(reached[ok], refpoint)
         summary["fronts"].append(

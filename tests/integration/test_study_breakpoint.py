@@ -20,7 +20,8 @@ import pytest
 import coordinator
 from coordinator._study import StudyOptions, run_study
 
-pytestmark = pytest.mark.integration
+# many runs on a shared 2-core machine: a hang guard well above the project's 180 s default
+pytestmark = [pytest.mark.integration, pytest.mark.timeout(1200)]
 
 AGENTS = 8
 CURVATURE = 1.0
@@ -101,4 +102,4 @@ def test_breakpoint_search_finds_the_dgd_step_bound(tmp_path: Path) -> None:
     frames = coordinator.load_study(out)
     assert set(frames.runs["engine"]) == {"batch"}
     assert len(frames.breakpoint) == len(bp["points"])
-    assert (out / "figures" / "success_rate.png").exists() or list((out / "figures").glob("*.png"))
+    assert (out / "figures" / "success-rate.png").exists()

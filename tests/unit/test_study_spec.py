@@ -3,6 +3,7 @@ changed study in an existing study directory."""
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -130,3 +131,21 @@ def test_changed_study_is_refused(tmp_path: Path) -> None:
     (tmp_path / "reef.toml").write_text(BASE.replace("step = 0.1", "step = 0.2"))
     with pytest.raises(StudyChanged, match=r"\[scenario\]"):
         _prepare_dir(load_study_spec(p), out)
+
+
+def test_readme_studies_section_examples_load_and_its_figures_exist() -> None:
+    root = Path(__file__).resolve().parents[2]
+    readme = (root / "README.md").read_text()
+    section = readme.split("\n## Studies\n", 1)[1].split("\n## ", 1)[0]
+    examples = sorted((root / "examples" / "studies").glob("*.toml"))
+    kinds = set()
+    for f in examples:
+        spec = load_study_spec(f)
+        kinds.add(spec.kind)
+        assert f"examples/studies/{f.name}" in section, f.name
+    assert kinds == {"grid", "breakpoint", "front"}
+    images = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", section)
+    assert len(images) >= 3
+    for img in images:
+        assert (root / img).is_file(), img
+    assert "not a safety case" in section
