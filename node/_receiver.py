@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 
 from node._algorithm import Received
+from node._delaystats import DelayStats
 from node._errors import WireError
 from node._links import DELIVER, LinkFault, LinkModel
 from node._wire import CRC_RESIDUE, DATA, PROBE, DataLayout
@@ -64,7 +65,8 @@ class InLinkCounters:
     first_seq: int = 0
     #: the sequence numbers counted lost (a late arrival is moved to rejected)
     missing: set[int] = field(default_factory=set)
-    delays: list[float] = field(default_factory=list)
+    #: delays of the delivered messages (s), in fixed memory (node._delaystats)
+    delays: DelayStats = field(default_factory=DelayStats)
 
     def as_list(self) -> list[Any]:
         return [
@@ -101,6 +103,7 @@ class _InLink:
         "epoch",
         "fresh",
         "heard",
+        "keep_delays",
         "last_iter",
         "last_release",
         "latest",
@@ -110,9 +113,11 @@ class _InLink:
         "stale",
     )
 
-    def __init__(self, src: int, model: LinkModel) -> None:
+    def __init__(self, src: int, model: LinkModel, keep_delays: bool = False) -> None:
         self.src = src
         self.model = model
+        #: keep every delay too ([telemetry].delay_samples)
+        self.keep_delays = keep_delays
         self.epoch = -1  # unknown until the peer table says
         self.counters: dict[int, InLinkCounters] = {}
         #: counters of the current epoch once a message of it arrived (the fast path's)
@@ -139,7 +144,7 @@ class _InLink:
     def cur(self) -> InLinkCounters:
         c = self.counters.get(self.epoch)
         if c is None:
-            c = self.counters[self.epoch] = InLinkCounters()
+            c = self.counters[self.epoch] = InLinkCounters(delays=DelayStats(self.keep_delays))
         return c
 
 
@@ -155,6 +160,7 @@ class Receiver:
         seed: int,
         mode: str,
         period_s: float,
+        keep_delays: bool = False,
     ) -> None:
         self.agent = agent
         self.sizes = dict(sizes)
@@ -166,7 +172,7 @@ class Receiver:
         self.start = 0.0
         self.unattributed_rejected = 0
         self.inlinks: dict[int, _InLink] = {
-            j: _InLink(j, LinkModel(seed, j, agent)) for j in in_neighbours
+            j: _InLink(j, LinkModel(seed, j, agent), keep_delays) for j in in_neighbours
         }
 
     def add_fault(self, entry: Mapping[str, Any]) -> None:
@@ -226,7 +232,9 @@ class Receiver:
             link.set_epoch(epoch)
         c = link.counters.get(epoch)
         if c is None:
-            c = link.counters[epoch] = InLinkCounters(first_seq=seq)
+            c = link.counters[epoch] = InLinkCounters(
+                first_seq=seq, delays=DelayStats(link.keep_delays)
+            )
         if epoch == link.epoch:
             link.current = c
         c.received += 1
@@ -440,13 +448,9 @@ class Receiver:
             per = {}
             for ep, c in link.counters.items():
                 row: list[Any] = c.as_list()
-                if c.delays:
-                    d = np.asarray(c.delays) * 1000.0
-                    row += [float(np.median(d)), float(np.percentile(d, 95)), float(d.max())]
-                else:
-                    row += [None, None, None]
+                row += c.delays.summary_ms()
                 if with_delays:
-                    row.append(c.delays)
+                    row.append(c.delays.values or [])
                 per[ep] = row
             out[j] = per
         return out

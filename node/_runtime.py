@@ -362,6 +362,7 @@ class Node:
             seed=int(plan["seed"]),
             mode=self.mode,
             period_s=self.period,
+            keep_delays=self.keep_delays,
         )
         self.inlinks = self.rx.inlinks
         self._encode = self.rx.layout.encoder(self.agent, self.epoch)

@@ -61,7 +61,7 @@ def test_in_order_frames_are_delivered_with_their_delays() -> None:
         r.on_frame(frame(1, s, t=1.0 + s), now=1.25 + s)
     c = counters(r, 1)
     assert (c.received, c.delivered, c.rejected, c.lost_transport, c.max_seq) == (5, 5, 0, 0, 4)
-    assert c.delays == pytest.approx([0.25] * 5)
+    assert list(c.delays) == pytest.approx([0.25] * 5)
     box = r.inbox()
     assert set(box) == {1}
     assert box[1].iteration == 4
