@@ -7,6 +7,7 @@ only report to the coordinator in telemetry batches.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import getpass
 import os
 import platform
@@ -22,6 +23,7 @@ import numpy as np
 import zmq
 
 from coordinator import _process_faults as process_faults
+from coordinator._capacity import check_capacity, default_heartbeat_timeout, wave_size
 from coordinator._inbox import CONTROL_RCVHWM, RefusalLog, take_turn
 from coordinator._interrupts import EXIT_INTERRUPTED, Interrupts, abandon_run
 from coordinator._ipc_dirs import make_ipc_dir, remove_stale_ipc_dirs
@@ -45,7 +47,7 @@ from coordinator._rundir import (
 from coordinator._snapshot import take_snapshot
 from coordinator._swarm import Swarm, with_transport
 from coordinator._window_events import WindowEvents
-from node._errors import WireError
+from node._errors import EXIT_COORDINATOR_SILENT, WireError
 from node._security import (
     CONTROL_DOMAIN,
     Gatekeeper,
@@ -96,8 +98,10 @@ class RunOptions:
     listen: str | None = None
     #: fork the agents here; False waits for agents started by hand (other machines)
     launch_local: bool = True
-    heartbeat_timeout: float = 3.0
-    #: seconds to wait until every agent is ready; None: 20 s + 0.1 s per agent
+    #: seconds without a word from the coordinator before an agent exits by itself; None:
+    #: coordinator._capacity.default_heartbeat_timeout (3 s, more for large swarms)
+    heartbeat_timeout: float | None = None
+    #: seconds to wait until every agent is ready; None: 20 s + 0.2 s per agent
     handshake_timeout: float | None = None
     #: None, or called during the handshake as on_join(endpoint, joined, expected) (the
     #: command line shows "joined k of n" with it while agents started by hand come in)
@@ -170,7 +174,21 @@ class Coordinator:
         self.swarm = swarm
         #: the run's one gap function: summary, metrics and live view all use it
         self.gap = GapFunction.for_swarm(swarm)
+        if options.engine == "processes" and options.launch_local and options.inventory is None:
+            top = swarm.topology
+            degree = max(
+                (len(top.in_neighbours(i)) + len(top.out_neighbours(i)) for i in range(swarm.n)),
+                default=0,
+            )
+            check_capacity(swarm.n, degree, str(swarm.scenario.source))
+        if options.heartbeat_timeout is None:
+            hb = default_heartbeat_timeout(swarm.n)
+            options = dataclasses.replace(options, heartbeat_timeout=hb)
         self.opt = options
+        self.hb: float = options.heartbeat_timeout  # type: ignore[assignment]
+        #: agents still to fork (bounded waves, see spawn_waves) and the last loop turn
+        self.to_spawn: list[_Agent] = []
+        self.last_turn: float | None = None
         self.s = swarm.scenario
         self.n = swarm.n
         self.clock = time.monotonic
@@ -328,9 +346,31 @@ class Coordinator:
                 self.spawn(a)
         elif self.opt.launch_local:
             self.fork = ForkServer()
-            self.write_run_json(process_group=self.fork.pgid)
-            for a in self.agents:
-                self.spawn(a)
+            self.write_run_json(process_group=self.fork.pgid, heartbeat_timeout_s=self.hb)
+            self.to_spawn = list(self.agents)
+            self.spawn_waves()
+
+    def spawn_waves(self) -> None:
+        """Fork agents in waves: at most wave_size() of them between fork and hello."""
+        if not self.to_spawn:
+            return
+        forked = self.n - len(self.to_spawn)
+        joining = sum(a.ident is None and not a.dead for a in self.agents[:forked])
+        while self.to_spawn and joining < wave_size():
+            self.spawn(self.to_spawn.pop(0))
+            joining += 1
+
+    def note_turn(self) -> None:
+        """A loop turn that came late (the coordinator was starved or stopped) goes to
+        events.jsonl: agents may leave for a missed heartbeat, and this says why."""
+        now = self.clock()
+        if self.last_turn is not None and now - self.last_turn > max(1.0, self.hb / 2):
+            self.event(
+                "coordinator-stalled",
+                stalled_s=round(now - self.last_turn, 3),
+                heartbeat_timeout_s=self.hb,
+            )
+        self.last_turn = now
 
     def spawn(self, a: _Agent) -> None:
         assert self.fork is not None
@@ -357,12 +397,20 @@ class Coordinator:
                     continue  # an older incarnation's notice
                 status = int(ev["status"])
                 how = f"killed by signal {-status}" if status < 0 else f"exit status {status}"
+                if status == EXIT_COORDINATOR_SILENT:
+                    how = (
+                        f"it missed the coordinator's heartbeat: no word for {self.hb:.1f} s;"
+                        f" see telemetry/agent-{a.id}.log"
+                    )
                 a.dead = True
                 if a.records and not a.finished:
                     a.record.alive = False
                 if a.finished or self.stop_requested or a.crashed_on_purpose:
                     continue
                 msg = f"agent {a.id} died unexpectedly ({how})"
+                if status == EXIT_COORDINATOR_SILENT:
+                    msg = f"agent {a.id} left: {how}"
+                    self.event("agent-missed-heartbeat", agent=a.id, epoch=a.epoch, pid=a.pid)
                 self.event("agent-lost", agent=a.id, epoch=a.epoch, pid=a.pid, status=status)
                 self.unexpected.append(msg)
 
@@ -594,12 +642,14 @@ class Coordinator:
         )
 
     def handshake(self) -> None:
-        timeout = self.opt.handshake_timeout or (20.0 + 0.1 * self.n)
+        timeout = self.opt.handshake_timeout or (20.0 + 0.2 * self.n)
         deadline = self.clock() + timeout
         peers_sent = False
         next_beat = self.clock()
         while True:
             self.pump(5)
+            self.note_turn()
+            self.spawn_waves()
             if self.opt.on_join is not None:
                 self.opt.on_join(
                     self.endpoint, sum(a.ident is not None for a in self.agents), self.n
@@ -838,8 +888,10 @@ class Coordinator:
         self.event("go", agents=self.n, lead_s=lead)
         next_beat = self.clock()
         budget_end = None if self.s.seconds is None else float(self.s.seconds)
+        self.last_turn = None
         while True:
             self.pump(10)
+            self.note_turn()
             now = self.clock()
             if now >= next_beat:
                 for a in self.agents:

@@ -105,7 +105,7 @@ def salvage(run_dir: Path) -> dict[str, Any]:
     if not (d / "scenario.toml").is_file():
         raise SalvageRefused(f"{d}: no scenario.toml, so the swarm cannot be rebuilt")
     swarm = load(d / "scenario.toml")
-    coord = Coordinator(swarm, RunOptions(out=d, label=run.get("label")))
+    coord = Coordinator(swarm, RunOptions(out=d, label=run.get("label"), launch_local=False))
     for a in coord.agents:
         tel = d / "telemetry" / f"agent-{a.id}.msgpack"
         if tel.is_file():

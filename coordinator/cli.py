@@ -59,14 +59,14 @@ def _version() -> str:
         return "unknown (not installed)"
 
 
-def _heartbeat_option(p: argparse.ArgumentParser) -> None:
+def _heartbeat_option(p: argparse.ArgumentParser, *, scaled: bool = False) -> None:
     p.add_argument(
         "--heartbeat-timeout",
         type=_seconds,
-        default=3.0,
+        default=None if scaled else 3.0,
         metavar="S",
         help="seconds without a word from the coordinator before an agent exits by itself"
-        " (default 3)",
+        + (" (default max(3, 0.1 per agent per core))" if scaled else " (default 3)"),
     )
 
 
@@ -138,7 +138,7 @@ def _add_run(sub: Any) -> None:
         type=_seconds,
         metavar="S",
         help="seconds to wait until every agent has joined and is ready"
-        " (default 20 + 0.1 per agent)",
+        " (default 20 + 0.2 per agent)",
     )
     r.add_argument(
         "--keys",
@@ -146,7 +146,7 @@ def _add_run(sub: Any) -> None:
         metavar="DIR",
         help="key directory (swarmrig keys make): encrypt and authenticate every channel",
     )
-    _heartbeat_option(r)
+    _heartbeat_option(r, scaled=True)
 
 
 def _add_check(sub: Any) -> None:
@@ -496,7 +496,18 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return 0
 
 
+#: a list longer than this is shown by its first and last entries and its length
+SHORT_LIST = 8
+
+
 def _short(v: Any) -> str:
+    if isinstance(v, list) and len(v) > SHORT_LIST:
+        head = ", ".join(_short(x) for x in v[:3])
+        return f"[{head}, ..., {_short(v[-1])}] ({len(v)} entries)"
+    if isinstance(v, dict) and len(v) > SHORT_LIST:
+        items = list(v.items())
+        head = ", ".join(f"{k}: {_short(x)}" for k, x in items[:3])
+        return f"{{{head}, ...}} ({len(v)} entries)"
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, float):

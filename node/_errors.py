@@ -21,3 +21,12 @@ class ObjectiveError(ScenarioError):
 
 class AgentFailure(SwarmrigError):
     """Something broke at run time inside an agent (lost coordinator, diverged state)."""
+
+
+class CoordinatorSilent(AgentFailure):
+    """No word from the coordinator for the heartbeat timeout: the agent exits by itself
+    with EXIT_COORDINATOR_SILENT, after saying so in its log."""
+
+
+#: an agent's exit status when it left because the coordinator was silent
+EXIT_COORDINATOR_SILENT = 7

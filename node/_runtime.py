@@ -29,7 +29,13 @@ import numpy as np
 import zmq
 
 from node._algorithm import AgentSpec, Algorithm, StepRule, algorithm_class
-from node._errors import AgentFailure, ProtocolError, WireError
+from node._errors import (
+    EXIT_COORDINATOR_SILENT,
+    AgentFailure,
+    CoordinatorSilent,
+    ProtocolError,
+    WireError,
+)
 from node._lifecycle import Lifecycle, Phase
 from node._objectives import objective_from_spec
 from node._receiver import Receiver
@@ -312,7 +318,7 @@ class Node:
                         f"agent {self.agent}: coordinator said {msg['t']}: {msg.get('reason', '')}"
                     )
             elif self.clock() - self.last_ctl > self.heartbeat_timeout:
-                raise AgentFailure(
+                raise CoordinatorSilent(
                     f"agent {self.agent}: coordinator silent for {self.heartbeat_timeout:.1f} s"
                     + ("" if self.gate is None else self.gate.trouble_with("coordinator"))
                 )
@@ -576,7 +582,7 @@ class Node:
             if self.gate is not None:
                 self.report_refusals()
             if self.coordinator_lost():
-                raise AgentFailure(
+                raise CoordinatorSilent(
                     f"agent {self.agent}: coordinator silent for "
                     f"{self.heartbeat_timeout:.1f} s during handshake"
                 )
@@ -786,8 +792,9 @@ class Node:
                     f"agent {self.agent}: coordinator silent for {self.heartbeat_timeout:.1f} s;"
                     " exiting",
                     file=sys.stderr,
+                    flush=True,
                 )
-                return 3
+                return EXIT_COORDINATOR_SILENT
             self.finish(state, reason)
             if self.life.phase is Phase.RUNNING:
                 self.life.finished()
@@ -796,8 +803,8 @@ class Node:
         except AgentFailure as exc:
             with contextlib.suppress(Exception):
                 self.send_ctl("failed", error=str(exc))
-            print(str(exc), file=sys.stderr)
-            return 3
+            print(str(exc), file=sys.stderr, flush=True)
+            return EXIT_COORDINATOR_SILENT if isinstance(exc, CoordinatorSilent) else 3
         except Exception as exc:
             msg = f"agent {self.agent}: {type(exc).__name__}: {exc}"
             with contextlib.suppress(Exception):
