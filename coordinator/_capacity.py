@@ -35,9 +35,10 @@ __all__ = [
 ]
 
 #: Private memory of one agent process, forked from the warm fork server (numpy, pyzmq,
-#: msgpack already imported and shared copy-on-write): 20 MiB, measured with psutil (USS of
-#: the agents of a 16-agent ring on this project's 2-core machine was 12-16 MiB; rounded up
-#: for the pages a run dirties).
+#: msgpack already imported and shared copy-on-write). Measured with psutil: the USS of each
+#: agent of a running 16-agent async ring on this project's 2-core machine was 7.3-7.9 MiB
+#: (RSS 62 MiB, mostly shared). 20 MiB is that with a margin of our own (no source) for
+#: larger dimensions, more links and the pages a long run dirties.
 AGENT_BYTES = 20 * 2**20
 #: Threads of one agent: its own, and ZeroMQ's I/O thread and reaper.
 AGENT_THREADS = 3
