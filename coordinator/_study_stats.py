@@ -34,7 +34,10 @@ def wilson(successes: int, n: int, confidence: float = 0.95) -> tuple[float, flo
     denom = 1 + z * z / n
     centre = (p + z * z / (2 * n)) / denom
     half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / denom
-    return max(0.0, centre - half), min(1.0, centre + half)
+    # at k = 0 (k = n) the bound is exactly 0 (1); rounding would leave 1e-17 or so
+    low = 0.0 if successes == 0 else max(0.0, centre - half)
+    high = 1.0 if successes == n else min(1.0, centre + half)
+    return low, high
 
 
 def logistic_crossing(
