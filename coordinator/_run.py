@@ -64,6 +64,10 @@ __all__ = ["RunFailed", "RunOptions", "RunResult", "execute"]
 
 VERSION = "0.1.0"
 HEARTBEAT_S = 0.5
+#: start-up with no agent joining, binding or getting ready for this long (plus
+#: HANDSHAKE_STALL_PER_AGENT_S per agent) has stalled
+HANDSHAKE_STALL_S = 20.0
+HANDSHAKE_STALL_PER_AGENT_S = 0.1
 #: clock pings per agent incarnation during the handshake (the least round trip wins)
 PINGS = 20
 #: refused peers written to events.jsonl one by one; beyond this they are only counted
@@ -642,8 +646,15 @@ class Coordinator:
         )
 
     def handshake(self) -> None:
+        # The default deadline moves on while start-up does (a hello, a bound, a ready less
+        # than HANDSHAKE_STALL_S + 0.1 s per agent ago), up to 4 times itself: a loaded machine starts a large
+        # swarm slowly but steadily. A --join-timeout is a hard limit.
         timeout = self.opt.handshake_timeout or (20.0 + 0.2 * self.n)
-        deadline = self.clock() + timeout
+        hard = self.opt.handshake_timeout is not None
+        start = self.clock()
+        deadline = start + timeout
+        progress: tuple[int, int, int] = (0, 0, 0)
+        last_progress = start
         peers_sent = False
         next_beat = self.clock()
         while True:
@@ -672,9 +683,19 @@ class Coordinator:
                 peers_sent = True
             if peers_sent and all(a.ready for a in self.agents):
                 return
-            if self.clock() > deadline:
+            now = self.clock()
+            seen = (
+                sum(a.ident is not None for a in self.agents),
+                sum(a.endpoint is not None for a in self.agents),
+                sum(a.ready for a in self.agents),
+            )
+            if seen != progress:
+                progress, last_progress = seen, now
+            quiet = now - last_progress
+            stalled = hard or quiet > HANDSHAKE_STALL_S + HANDSHAKE_STALL_PER_AGENT_S * self.n
+            if now > deadline and (stalled or now > start + 4 * timeout):
                 missing = [a.id for a in self.agents if not a.ready]
-                raise _Stop(f"agents {missing} were not ready after {timeout:.0f} s", 3)
+                raise _Stop(f"agents {missing} were not ready after {now - start:.0f} s", 3)
 
     def go(self, a: _Agent) -> None:
         """Start an agent on the run's common clock (a restarted one joins the running clock:
