@@ -44,6 +44,7 @@ from coordinator._rundir import (
     RunDirError,
     prepare_out,
 )
+from coordinator._samples import SampleTail, full_records
 from coordinator._snapshot import take_snapshot
 from coordinator._swarm import Swarm, with_transport
 from coordinator._window_events import WindowEvents
@@ -576,7 +577,8 @@ class Coordinator:
                 if a.restart_state == "last":
                     start_state = last.samples[-1][2]
         a.restart_pending = False
-        a.records.append(AgentRecord(agent=i, epoch=a.epoch))
+        # samples stream to telemetry/; the record keeps the first and last (_samples)
+        a.records.append(AgentRecord(agent=i, epoch=a.epoch, samples=SampleTail()))
         a.start_iteration = start_iteration
         plan = self.swarm.plan(i, a.epoch, start_state=start_state, start_iteration=start_iteration)
         if self.keys is not None:
@@ -729,11 +731,13 @@ class Coordinator:
     def on_telemetry(self, a: _Agent, msg: dict[str, Any]) -> None:
         rec = a.record
         t0 = self.agent_time_origin(a)
-        new = len(rec.samples)
-        for s in msg["samples"]:
-            rec.samples.append((int(s[0]), float(s[1]) - a.offset - t0, s[2], s[3], s[4], s[5]))
-        if self.window_events.windows and len(rec.samples) > new:
-            self.note_windows(a, rec.samples[new:])
+        new = [
+            (int(s[0]), float(s[1]) - a.offset - t0, s[2], s[3], s[4], s[5]) for s in msg["samples"]
+        ]
+        for s in new:
+            rec.samples.append(s)
+        if self.window_events.windows and new:
+            self.note_windows(a, new)
         rec.links = {int(k): {int(e): v for e, v in per.items()} for k, per in msg["links"].items()}
         rec.counters = msg["counters"]
         if msg["samples"]:
@@ -967,7 +971,9 @@ class Coordinator:
     def results(self) -> RunResult:
         sw = self.swarm
         s = self.s
-        records = [r for a in self.agents for r in a.records]
+        records = full_records(
+            [r for a in self.agents for r in a.records], self.dir.path / "telemetry"
+        )
         metrics = metric_series(
             records,
             self.n,
