@@ -314,8 +314,9 @@ def test_lognormal_delays_pass_kolmogorov_smirnov(processes, tmp_path):
     row = link_rows(result.run_dir)[(0, 1)]
     assert row["in_flight"] == 0 and row["lost_transport"] == 0, row
     assert delayed.size == row["delivered"] == row["sent"] >= 800, (delayed.size, row)
+    # (how long loopback takes depends on the machine's load, which this test does not
+    # judge: the reference law below carries the measured latencies along)
     assert loopback.size >= 800
-    assert np.median(loopback) < 2.0, np.median(loopback)
     law = stats.lognorm(s=sigma, scale=median_ms)
 
     # What arrives is loopback latency plus the injected delay. Under CPU contention the
