@@ -219,6 +219,9 @@ class LockstepCoordinator(Coordinator):
             except Exception as exc:  # what Node.run reports when its set-up raises
                 m.send_ctl("failed", error=f"agent {m.agent}: {type(exc).__name__}: {exc}")
                 self._gone(m)
+        elif msg["t"] == "peers":
+            for key, entry in msg["peers"].items():
+                m.rx.announce(int(key), int(entry[1]))
         elif msg["t"] == "go":
             m.start_node = float(msg["start_node"])
             m.rx.start = m.start_node
@@ -247,7 +250,9 @@ class LockstepCoordinator(Coordinator):
             self.members.append(_Member(a.id, self.from_agent, self.virtual_clock))
         for a in self.agents:
             self.send(a, "plan", plan=self.swarm.plan(a.id, 0))
-            self.send(a, "peers", peers={})
+            # the epochs of its in-neighbours (no endpoints here): only these are accepted
+            ins = self.swarm.topology.in_neighbours(a.id)
+            self.send(a, "peers", peers={j: ["lockstep", 0] for j in ins})
             a.ready = True
         if self.failures:
             raise _Stop("an agent failed during start-up: " + self.failures[0], 3)

@@ -23,8 +23,11 @@ __all__ = [
     "MessageTotals",
     "final_states",
     "final_states_json",
+    "forged_by_link",
     "link_accounting",
     "metric_series",
+    "refused_frames_event",
+    "unattributed_frames",
 ]
 
 # positions in a link counter row (see node._runtime.COUNTER_FIELDS)
@@ -69,6 +72,13 @@ class MessageTotals:
     duplicated: int
     #: sent but not yet seen by a live receiver at stop (including held by delays)
     in_flight: int
+    #: frames claiming a link's sender that it never sent as such (an epoch the coordinator
+    #: did not announce, a non-finite state, an implausible sequence jump): not sent, so
+    #: not part of the sum; see node._receiver
+    forged: int = 0
+    #: frames from no known sender (undecodable, bad checksum, oversized, not an
+    #: in-neighbour), over every receiver
+    unattributed: int = 0
 
     def as_dict(self) -> dict[str, int]:
         return {
@@ -79,7 +89,53 @@ class MessageTotals:
             "rejected": self.rejected,
             "duplicated": self.duplicated,
             "in_flight": self.in_flight,
+            "forged": self.forged,
+            "unattributed": self.unattributed,
         }
+
+
+def _counters(r: AgentRecord) -> Mapping[str, Any]:
+    return (r.final["counters"] if r.final else r.counters) or {}
+
+
+def _forged(r: AgentRecord) -> dict[int, int]:
+    """In-neighbour -> forged frames this incarnation refused (its latest report)."""
+    per = _counters(r).get("forged") or {}
+    return {int(k): int(v) for k, v in per.items()}
+
+
+def unattributed_frames(records: Sequence[AgentRecord]) -> dict[int, int]:
+    """Agent -> frames from no known sender that its incarnations refused."""
+    out: dict[int, int] = {}
+    for r in records:
+        n = int(_counters(r).get("unattributed_rejected", 0) or 0)
+        out[r.agent] = out.get(r.agent, 0) + n
+    return out
+
+
+def forged_by_link(records: Sequence[AgentRecord]) -> dict[tuple[int, int], int]:
+    """(sender, receiver) -> forged frames, over the receiver's incarnations (nonzero)."""
+    out: dict[tuple[int, int], int] = {}
+    for r in records:
+        for src, n in _forged(r).items():
+            if n:
+                out[(src, r.agent)] = out.get((src, r.agent), 0) + n
+    return out
+
+
+def refused_frames_event(records: Sequence[AgentRecord]) -> dict[str, Any] | None:
+    """The fields of events.jsonl's one ``data-refused`` line (None when nothing was refused):
+    counts per link and per receiver, bounded by the swarm's size, never one line per frame."""
+    forged = forged_by_link(records)
+    unattributed = {a: n for a, n in unattributed_frames(records).items() if n}
+    if not forged and not unattributed:
+        return None
+    return {
+        "forged": sum(forged.values()),
+        "forged_by_link": [[s, d, n] for (s, d), n in sorted(forged.items())],
+        "unattributed": sum(unattributed.values()),
+        "unattributed_by_agent": {str(a): n for a, n in sorted(unattributed.items())},
+    }
 
 
 def _sent_by_epoch(records: Sequence[AgentRecord]) -> dict[tuple[int, int], tuple[int, bool]]:
@@ -111,8 +167,9 @@ def link_accounting(
         lst.sort(key=lambda r: r.epoch)
     rows = []
     tot = dict.fromkeys((f.name for f in dataclasses.fields(MessageTotals)), 0)
+    tot["unattributed"] = sum(unattributed_frames(records).values())
     for src, dst in links:
-        row = dict.fromkeys(tot, 0)
+        row = {k: 0 for k in tot if k != "unattributed"}
         medians, p95s, maxes, weights = [], [], [], []
         sender_epochs = sorted(e for (a, e) in sent if a == src)
         for se in sender_epochs:
@@ -157,7 +214,8 @@ def link_accounting(
             else:
                 row["lost_transport"] += beyond
             row["sent"] += s_count
-        for k in tot:
+        row["forged"] = sum(_forged(r).get(src, 0) for r in by_agent.get(dst, []))
+        for k in row:
             tot[k] += row[k]
         rows.append(
             {

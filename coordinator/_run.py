@@ -34,6 +34,7 @@ from coordinator._metrics import (
     final_states_json,
     link_accounting,
     metric_series,
+    refused_frames_event,
 )
 from coordinator._results import GapFunction, fault_windows, target_spread, verdict_figures
 from coordinator._rundir import (
@@ -1143,6 +1144,9 @@ class Coordinator:
             self.cleanup()
         self.set_phase("results")
         self.refusals.close()
+        refused = refused_frames_event([r for a in self.agents for r in a.records])
+        if refused is not None:  # data frames the agents refused: counts, one line
+            self.event("data-refused", **refused)
         self.event("stop", reason=self.exit_reason)
         self.settle_exit()
         try:

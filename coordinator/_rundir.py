@@ -38,6 +38,7 @@ LINK_COLUMNS = (
     "duplicated",
     "rejected",
     "in_flight",
+    "forged",
     "delay_median_ms",
     "delay_p95_ms",
     "delay_max_ms",

@@ -10,6 +10,13 @@ Rules:
   visible to the algorithm), dropped by injection, rejected, or still held at stop; sequence
   numbers never seen below the highest one seen are lost in transport;
 * a frame from an old epoch is refused, a replayed sequence number is refused;
+* nothing from the network is trusted (a checksum is no authentication): only epochs the
+  coordinator announced for the sender (``announce``, from the peer table) are accepted, and
+  a frame claiming the sender under another epoch, a non-finite state, or a sequence jump no
+  real link makes, is *forged*: counted per in-link (``forged``) and otherwise ignored, so
+  that one such frame changes nothing of the link (epoch, sequence, heard, inbox). A jump of
+  more than ``_CONFIRM_JUMP`` is taken only once the next frame continues from it (then the
+  refused frame counts as lost in transport, not forged); beyond ``_MAX_SEQ_JUMP`` never;
 * in rounds mode a message of iteration k becomes visible at round k + lag, where lag counts
   the whole round periods of its injected delay; in async mode at arrival + delay.
 """
@@ -34,6 +41,8 @@ __all__ = ["COUNTER_FIELDS", "InLinkCounters", "Receiver"]
 
 #: a sequence number this far past the highest seen is refused as implausible
 _MAX_SEQ_JUMP = 1 << 20
+#: a jump past this many sequence numbers must be confirmed by the frame after it
+_CONFIRM_JUMP = 1 << 10
 #: gaps up to this long remember their sequence numbers (for late arrivals)
 _TRACKED_GAP = 1 << 16
 #: below this many frames a batch is handled frame by frame
@@ -98,9 +107,11 @@ COUNTER_FIELDS = (
 class _InLink:
     __slots__ = (
         "arrays",
+        "candidate",
         "counters",
         "current",
         "epoch",
+        "forged",
         "fresh",
         "heard",
         "keep_delays",
@@ -133,6 +144,10 @@ class _InLink:
         self.last_release = 0.0
         #: rounds mode: gave up waiting for this neighbour; not awaited until it speaks
         self.stale = False
+        #: frames claiming this sender that it never sent as such (see the module rules)
+        self.forged = 0
+        #: (epoch, seq) of a refused long jump, taken if the next frame continues from it
+        self.candidate: tuple[int, int] | None = None
 
     def set_epoch(self, epoch: int) -> None:
         """A newer incarnation of the sender: its messages start new counters."""
@@ -189,6 +204,19 @@ class Receiver:
             if link is not None:
                 link.model.remove(index)
 
+    def announce(self, sender: int, epoch: int) -> bool:
+        """The coordinator says ``sender`` now runs as ``epoch`` (its peer table); True when
+        that is a newer incarnation than known (its frames are accepted from now on)."""
+        link = self.inlinks.get(sender)
+        if link is None or epoch <= link.epoch:
+            return False
+        link.set_epoch(epoch)
+        link.candidate = None
+        return True
+
+    def forged_by_link(self) -> dict[int, int]:
+        return {j: link.forged for j, link in self.inlinks.items() if link.forged}
+
     def all_heard(self) -> bool:
         return all(link.heard for link in self.inlinks.values())
 
@@ -206,6 +234,9 @@ class Receiver:
         c = link.current
         if kind == DATA and c is not None and epoch == link.epoch and seq == c.max_seq + 1:
             # The common case, kept short: the next message of the current incarnation.
+            if not self.layout.finite(payload):
+                link.forged += 1
+                return
             c.received += 1
             c.max_seq = seq
             if iteration > link.last_iter:
@@ -225,12 +256,29 @@ class Receiver:
                 self._decided(d, link, c, frame, seq, iteration, payload, send_time, now)
             return
         if kind == PROBE:
-            if epoch >= link.epoch:
+            if epoch == link.epoch:
                 link.heard = True
             return
-        if epoch > link.epoch:  # a newer incarnation than the peer table said
-            link.set_epoch(epoch)
         c = link.counters.get(epoch)
+        if epoch > link.epoch or (c is None and epoch < link.epoch):
+            # An incarnation the coordinator never announced (or one never heard that is
+            # gone already): no frame of it can be real.
+            link.forged += 1
+            return
+        if not self.layout.finite(payload):
+            link.forged += 1  # a non-finite state: no agent publishes one (it stops first)
+            return
+        if c is not None and c.max_seq >= 0 and seq - c.max_seq > _CONFIRM_JUMP:
+            # No real link skips a million messages in one step, and a long jump is taken
+            # only when the next frame continues from it: one forged header would otherwise
+            # turn every later real frame into a "replay".
+            if seq - c.max_seq > _MAX_SEQ_JUMP or link.candidate != (epoch, seq - 1):
+                link.candidate = (epoch, seq)
+                link.forged += 1
+                return
+            # The refused frame was real after all: counted lost in transport (the gap).
+            link.forged -= 1
+            link.candidate = None
         if c is None:
             c = link.counters[epoch] = InLinkCounters(
                 first_seq=seq, delays=DelayStats(link.keep_delays)
@@ -238,11 +286,6 @@ class Receiver:
         if epoch == link.epoch:
             link.current = c
         c.received += 1
-        if c.max_seq >= 0 and seq - c.max_seq > _MAX_SEQ_JUMP:
-            # No real link skips a million messages in one step: a forged or broken header
-            # would otherwise turn every later real frame into a "replay".
-            c.rejected += 1
-            return
         if seq <= c.max_seq:  # replayed or reordered by the transport: refuse
             c.rejected += 1
             if seq in c.missing:  # it arrived after all: refused, not lost
@@ -322,6 +365,7 @@ class Receiver:
         pos, expected = layout.skeleton
         head = np.frombuffer(buf, dtype=layout.dtype)
         ok = (u8[:, pos] == expected).all(axis=1) & (head["kind"] == DATA)
+        ok &= layout.finite_rows(u8)
         senders = head["sender"]
         for sender in np.unique(senders).tolist():
             idx = np.flatnonzero(senders == sender)

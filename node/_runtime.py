@@ -428,11 +428,10 @@ class Node:
             if link is None:
                 continue
             endpoint, epoch = str(entry[0]), int(entry[1])
-            if epoch > link.epoch:
-                link.set_epoch(epoch)
-                if epoch > 0:  # a restart: say so once the new incarnation is heard
-                    link.heard = False
-                    self.to_report[j] = epoch
+            # only announced incarnations are accepted; a restart: say so once it is heard
+            if self.rx.announce(j, epoch) and epoch > 0:
+                link.heard = False
+                self.to_report[j] = epoch
             old = self.connected.get(j)
             if old != endpoint:
                 if old is not None:
@@ -467,6 +466,8 @@ class Node:
             "sent": self.sent,
             "epoch": self.epoch,
             "unattributed_rejected": self.rx.unattributed_rejected,
+            # in-neighbour -> frames claiming it that it never sent as such (node._receiver)
+            "forged": self.rx.forged_by_link(),
             "refused_control": self.refused_control,
             "telemetry_dropped": self.telemetry_dropped,
             "age": self.rx.neighbour_age(self.iteration),
@@ -527,7 +528,7 @@ class Node:
             if kind == PROBE or link is None:
                 rx.on_frame(frame, now)
                 continue
-            if epoch >= link.epoch:
+            if epoch == link.epoch:
                 link.heard = True
             self.early.append((frame, now))
 

@@ -358,6 +358,31 @@ class DataLayout:
         m = decode_data(frame, self.sizes)
         return (m.kind, m.sender, m.epoch, m.seq, m.iteration, m.send_time, m.payload)
 
+    def finite(self, payload: Any) -> bool:
+        """Every value of a payload returned by :meth:`decode` is finite (one dot product
+        per array: NaN and infinity fail it, and so does a norm past 1e154, far beyond any
+        state that has not diverged)."""
+        if type(payload) is bytes:
+            for _, _, _, start, size in self._parts:
+                v = np.frombuffer(payload, dtype=_F64, count=size, offset=start)
+                d = float(v.dot(v))
+                if d - d != 0.0:
+                    return False
+            return True
+        for v in payload_arrays(payload).values():
+            d = float(v.dot(v))
+            if d - d != 0.0:
+                return False
+        return True
+
+    def finite_rows(self, u8: np.ndarray) -> np.ndarray:
+        """:meth:`finite` for each row of a batch of fast-layout frames (uint8 rows)."""
+        ok = np.ones(len(u8), dtype=bool)
+        for _, _, _, start, size in self._parts:
+            v = np.ascontiguousarray(u8[:, start : start + 8 * size]).view(_F64)
+            ok &= np.isfinite((v * v).sum(axis=1))
+        return ok
+
     def arrays(self, payload: Any) -> dict[str, np.ndarray]:
         """Float64 arrays (read-only views) of a payload returned by :meth:`decode`."""
         if type(payload) is bytes:

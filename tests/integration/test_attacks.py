@@ -7,11 +7,21 @@ sleep is never stopped, continued or killed (the kernel's wait status of our own
 so, not the coordinator's word), events.jsonl records each refusal with the claimed id and
 pid, and the stranger is told to crash and pause itself instead. Hellos claiming pid -1, 0
 or 1 (``kill`` would reach every process of the user or of the group) are refused.
+
+Forged and junk data frames: an agent that runs our agent code but also publishes, at two
+iterations, a frame under an epoch the coordinator never announced (2^32 - 1, valid
+checksum), one with a sequence jump just under the refusal limit, one with a NaN state under
+the next sequence number, junk bytes, a frame failing its checksum, an oversized one and one
+from an agent id that does not exist. Its out-neighbours must refuse them all without any
+effect: the final states equal those of a clean run with the same seed (the lockstep engine,
+which runs the same agent core), and links.csv, summary.json and events.jsonl count exactly
+what was sent.
 """
 
 from __future__ import annotations
 
 import contextlib
+import csv
 import json
 import os
 import signal
@@ -23,10 +33,12 @@ import time
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 import zmq
 
 from coordinator._api import load
+from coordinator._api import run as run_scenario
 from coordinator._run import RunOptions, execute
 from node._wire import PROTOCOL, decode_control, encode_control
 from tests.integration.test_robustness import Sockets, events, receive, sockets  # noqa: F401
@@ -233,3 +245,90 @@ def test_an_agent_started_by_hand_crashes_and_rejoins_by_itself(processes, tmp_p
     assert summary["exit"] == "budget", summary["exit"]
     run = json.loads((out / "run.json").read_text())
     assert run["agents"][k]["epoch"] == 1
+
+
+#: the iterations at which the injector publishes its forged frames
+INJECT_AT = (20, 40)
+FORGED_PER_ROUND = 3  # unannounced epoch, sequence jump, NaN state (each on every out-link)
+JUNK_PER_ROUND = 4  # junk bytes, bad checksum, oversized, unknown sender (each receiver)
+INJECTOR = """
+import random, sys
+import numpy as np
+import node._runtime as r
+from node._wire import MAX_DATA_FRAME
+
+rnd = random.Random(7)
+publish = r.Node.publish
+
+
+def forging_publish(self, payload, iteration):
+    if iteration in {inject_at}:
+        lay, t = self.rx.layout, self.clock()
+        zero = {{k: np.zeros(n) for k, n in self.sizes.items()}}
+        nan = {{k: np.full(n, np.nan) for k, n in self.sizes.items()}}
+        good = lay.encode(self.agent, self.epoch, self.seq, iteration, t, zero)
+        for frame in (
+            lay.encode(self.agent, 2**32 - 1, self.seq, iteration, t, zero),
+            lay.encode(self.agent, self.epoch, self.seq + (1 << 20) - 1, iteration, t, zero),
+            lay.encode(self.agent, self.epoch, self.seq, iteration, t, nan),
+            bytes(rnd.randrange(256) for _ in range(rnd.randrange(1, 300))),
+            good[:-1] + bytes([good[-1] ^ 0x55]),
+            b"\\x00" * (MAX_DATA_FRAME + 1),
+            lay.encode(99, 0, 0, iteration, t, zero),
+        ):
+            self.pub.send(frame)
+    publish(self, payload, iteration)
+
+
+r.Node.publish = forging_publish
+sys.exit(r.main({endpoint!r}, {agent}))
+"""
+
+
+def test_forged_and_junk_data_frames_are_counted_and_change_nothing(processes, tmp_path):
+    n, v, iterations = 4, 2, 60
+    body = (
+        f'mode = "rounds"\niterations = {iterations}\n\n'
+        # generous: a round given up on would change the states (not what is tested here)
+        "[timing]\nround_timeout_ms = 600000.0\n"
+    )
+    sc = _scenario(tmp_path / "s.toml", n, body)
+    clean = run_scenario(sc, out=tmp_path / "clean", engine="lockstep")
+    assert clean.summary["exit"] == "budget"
+
+    out = tmp_path / "run"
+    coord = _Coordinator(sc, out)
+    code = INJECTOR.format(inject_at=set(INJECT_AT), endpoint=coord.endpoint, agent=v)
+    injector = subprocess.Popen(
+        [sys.executable, "-c", code], start_new_session=True, stderr=subprocess.PIPE, text=True
+    )
+    processes.groups.add(injector.pid)
+    processes.popen.append(injector)
+    agents = [_agent(processes, coord.endpoint, i) for i in range(n) if i != v]
+    result = coord.finish()
+    for p in [*agents, injector]:
+        assert p.wait(timeout=30) == 0, p.stderr.read()[-2000:]
+    assert result.summary["exit"] == "budget" and result.summary["verdict"] != "diverged"
+
+    def states(run_dir: Path) -> np.ndarray:
+        finals = json.loads((run_dir / "final_states.json").read_text())
+        assert [f["iteration"] for f in finals] == [iterations] * n, finals
+        return np.asarray([f["x"] for f in finals])
+
+    np.testing.assert_allclose(states(out), states(clean.run_dir), rtol=0, atol=1e-9)
+
+    rounds = len(INJECT_AT)
+    outs = sorted(load(sc).topology.out_neighbours(v))
+    with (out / "links.csv").open() as f:
+        rows = {(int(r["from"]), int(r["to"])): r for r in csv.DictReader(f)}
+    for (src, dst), row in rows.items():
+        expected = FORGED_PER_ROUND * rounds if src == v else 0
+        assert int(row["forged"]) == expected, (src, dst, row)
+        assert int(row["rejected"]) == 0 and int(row["lost_transport"]) == 0, row
+    messages = json.loads((out / "summary.json").read_text())["messages"]
+    assert messages["forged"] == FORGED_PER_ROUND * rounds * len(outs), messages
+    assert messages["unattributed"] == JUNK_PER_ROUND * rounds * len(outs), messages
+    refused = [e for e in events(out) if e["event"] == "data-refused"]
+    assert len(refused) == 1, refused
+    assert refused[0]["forged_by_link"] == [[v, o, FORGED_PER_ROUND * rounds] for o in outs]
+    assert refused[0]["unattributed_by_agent"] == {str(o): JUNK_PER_ROUND * rounds for o in outs}

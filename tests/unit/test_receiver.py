@@ -30,8 +30,16 @@ SEED = 11
 PERIOD = 0.01
 
 
-def rx(mode: str = "async", period: float = PERIOD, seed: int = SEED) -> Receiver:
-    return Receiver(AGENT, INS, SIZES, seed=seed, mode=mode, period_s=period)
+def rx(
+    mode: str = "async", period: float = PERIOD, seed: int = SEED, epoch: int | None = 0
+) -> Receiver:
+    """A receiver whose in-neighbours were announced under ``epoch`` (as the coordinator's
+    peer table does before any data flows); None: nothing announced."""
+    r = Receiver(AGENT, INS, SIZES, seed=seed, mode=mode, period_s=period)
+    if epoch is not None:
+        for j in INS:
+            r.announce(j, epoch)
+    return r
 
 
 def frame(sender: int, seq: int, *, epoch: int = 0, it: int | None = None, t: float = 0.0) -> bytes:
@@ -114,6 +122,9 @@ def test_a_newer_epoch_switches_and_old_epoch_frames_are_rejected() -> None:
     r = rx()
     for s in range(3):
         r.on_frame(frame(1, s, epoch=0), 0.0)
+    r.on_frame(frame(1, 0, epoch=1, it=6), 0.0)  # not announced yet: forged, ignored
+    assert r.inlinks[1].epoch == 0 and r.inlinks[1].forged == 1 and 1 not in r.inlinks[1].counters
+    assert r.announce(1, 1)  # the coordinator's peer table: the sender restarted
     r.on_frame(frame(1, 0, epoch=1, it=7), 0.0)  # the restarted sender starts at seq 0
     assert r.inlinks[1].epoch == 1
     assert r.inbox()[1].iteration == 7
@@ -128,12 +139,12 @@ def test_a_newer_epoch_switches_and_old_epoch_frames_are_rejected() -> None:
 
 
 def test_the_peer_table_epoch_refuses_older_frames() -> None:
-    r = rx()
-    r.inlinks[1].set_epoch(2)
-    r.on_frame(frame(1, 0, epoch=1), 0.0)
+    r = rx(epoch=None)
+    r.announce(1, 2)
+    r.on_frame(frame(1, 0, epoch=1), 0.0)  # an incarnation never heard, gone already
     r.on_frame(frame(1, 1, epoch=1), 0.0)
-    c = counters(r, 1, 1)
-    assert (c.received, c.rejected, c.delivered) == (2, 2, 0)
+    r.on_frame(frame(1, 0, epoch=3), 0.0)  # one not announced yet
+    assert r.inlinks[1].counters == {} and r.inlinks[1].forged == 3
     assert r.inbox() == {}
     assert not r.inlinks[1].heard
     r.on_frame(frame(1, 0, epoch=2), 0.0)
@@ -254,16 +265,21 @@ class Model:
     links: dict[tuple[int, int], Expected] = field(default_factory=dict)
     epoch: dict[int, int] = field(default_factory=dict)
     unattributed: int = 0
+    forged: dict[int, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         self.models = {j: LinkModel(self.seed, j, AGENT, self.faults) for j in INS}
+        for j in INS:  # announced as rx() does
+            self.announce(j, 0)
 
     def frame(self, sender: int, epoch: int, seq: int, it: int, now: float) -> None:
         if sender not in INS:
             self.unattributed += 1
             return
-        if epoch > self.epoch.get(sender, -1):
-            self.epoch[sender] = epoch
+        announced = self.epoch.get(sender, -1)
+        if epoch > announced or (epoch < announced and (sender, epoch) not in self.links):
+            self.forged[sender] = self.forged.get(sender, 0) + 1
+            return
         e = self.links.setdefault((sender, epoch), Expected())
         if e.first_seq is None:
             e.first_seq = seq
@@ -285,8 +301,13 @@ class Model:
             e.accepted += 1
             e.duplicated += d.copies - 1
 
+    def announce(self, sender: int, epoch: int) -> None:
+        if epoch > self.epoch.get(sender, -1):
+            self.epoch[sender] = epoch
+
     def check(self, r: Receiver, released: bool) -> None:
         assert r.unattributed_rejected == self.unattributed
+        assert r.forged_by_link() == {j: n for j, n in self.forged.items() if n}
         got = {(j, ep) for j, link in r.inlinks.items() for ep in link.counters}
         assert got == set(self.links)
         for (j, ep), e in self.links.items():
@@ -481,6 +502,7 @@ events = st.lists(
         st.tuples(st.just("garbage"), st.binary(max_size=12)),
         st.tuples(st.just("probe"), st.sampled_from((1, 2, 9)), st.integers(0, 2)),
         st.tuples(st.just("release"), st.integers(0, 14)),
+        st.tuples(st.just("announce"), st.sampled_from(INS), st.integers(0, 2)),
     ),
     max_size=60,
 )
@@ -527,6 +549,10 @@ def test_accounting_identity_and_model_under_random_frame_sequences(
             r.on_frame(encode_probe(j, ep, now), now)
             if j not in INS:
                 model.unattributed += 1
+        elif ev[0] == "announce":
+            _, j, ep = ev
+            r.announce(j, ep)
+            model.announce(j, ep)
         else:
             r.release(float(ev[1]) if mode == "rounds" else now, now)
         model.check(r, released=False)
@@ -545,7 +571,8 @@ def _snapshot(r: Receiver) -> Any:
         j: (link.epoch, link.last_iter, link.heard, link.stale, len(link.pending))
         for j, link in r.inlinks.items()
     }
-    return r.link_report(with_delays=True), r.unattributed_rejected, box, links
+    forged = r.forged_by_link()
+    return r.link_report(with_delays=True), r.unattributed_rejected, forged, box, links
 
 
 step_kinds = st.sampled_from(("next", "next", "next", "gap", "replay", "old", "bad", "probe"))
@@ -586,7 +613,7 @@ def test_a_batch_counts_like_frame_by_frame(
     steps: list[tuple[int, str]], fault_name: str | None, warmup: int
 ) -> None:
     # on_frames takes a numpy shortcut for clean batches; the outcome must not differ.
-    one, batch = rx("async"), rx("async")
+    one, batch = rx("async", epoch=1), rx("async", epoch=1)
     for r in (one, batch):
         if fault_name is not None:
             arm(r, FAULTS[fault_name], (2,))
@@ -601,7 +628,7 @@ def test_a_batch_counts_like_frame_by_frame(
 
 def test_a_clean_batch_takes_the_shortcut() -> None:
     # So that the comparison above compares the shortcut and not the fallback with itself.
-    r = rx("async")
+    r = rx("async", epoch=1)
     frames = _batch_frames([(1 + k % 2, "next") for k in range(40)], warmup=1)
     r.on_frames(frames[:2], 2.0)  # short: frame by frame, opens both links
     calls = []
@@ -612,16 +639,48 @@ def test_a_clean_batch_takes_the_shortcut() -> None:
     assert counters(r, 1, 1).delivered == 21 and counters(r, 2, 1).delivered == 21
 
 
-def test_an_implausible_sequence_jump_is_refused_and_the_link_keeps_working() -> None:
-    # A checksum is not authentication: one frame claiming seq + 2**40 must not turn every
+@pytest.mark.parametrize("jump", [2**40, 2**20, 2**20 - 1, 1025])
+def test_an_implausible_sequence_jump_is_refused_and_the_link_keeps_working(jump: int) -> None:
+    # A checksum is not authentication: one frame claiming seq + jump must not turn every
     # later real frame into a "replay".
     r = rx()
     sender = INS[0]
     for s in range(5):
         r.on_frame(frame(sender, s), 0.0)
-    r.on_frame(frame(sender, 5 + 2**40), 0.0)
+    r.on_frame(frame(sender, 4 + jump), 0.0)
     for s in range(5, 10):
         r.on_frame(frame(sender, s), 0.0)
     c = counters(r, sender)
-    assert c.rejected == 1 and c.delivered == 10 and c.max_seq == 9 and c.lost_transport == 0
+    assert c.rejected == 0 and c.delivered == 10 and c.max_seq == 9 and c.lost_transport == 0
+    assert r.inlinks[sender].forged == 1
     assert identity_holds(c)
+
+
+def test_a_long_real_gap_is_taken_once_the_next_frame_continues_it() -> None:
+    # A partition can really skip thousands of messages: the first frame after it is
+    # refused, the next one confirms the jump, and the refused one counts as lost.
+    r = rx()
+    for s in range(3):
+        r.on_frame(frame(1, s), 0.0)
+    r.on_frame(frame(1, 5000), 0.0)
+    assert counters(r, 1).max_seq == 2 and r.inlinks[1].forged == 1
+    r.on_frame(frame(1, 5001), 0.0)
+    c = counters(r, 1)
+    assert (c.max_seq, c.delivered, c.lost_transport, r.inlinks[1].forged) == (5001, 4, 4998, 0)
+    assert r.inbox()[1].iteration == 5001
+    assert identity_holds(c)
+
+
+@pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
+def test_a_non_finite_state_is_a_refused_frame_that_changes_nothing(bad: float) -> None:
+    for layout in (DataLayout(SIZES).encode, encode_data):
+        r = rx()
+        r.on_frame(frame(1, 0), 0.0)
+        before = (counters(r, 1).as_list(), r.inlinks[1].last_iter, r.inbox()[1].iteration)
+        r.on_frame(layout(1, 0, 1, 1, 0.0, {"x": np.array([bad, 1.0])}), 0.0)
+        box = r.inbox()[1]
+        after = (counters(r, 1).as_list(), r.inlinks[1].last_iter, box.iteration)
+        assert after == before and not box.fresh  # nothing new to see
+        assert r.inlinks[1].forged == 1
+        r.on_frame(frame(1, 1), 0.0)  # the real frame of that sequence number is taken
+        assert counters(r, 1).delivered == 2 and r.inbox()[1].iteration == 1
