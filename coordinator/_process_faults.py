@@ -29,7 +29,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from coordinator._run import Coordinator, _Agent
 
-__all__ = ["crash", "pause", "restart", "signal_refusal", "slow"]
+__all__ = ["crash", "pause", "rejoining", "restart", "signal_refusal", "slow"]
 
 #: a self-restarting agent (--no-launch) that has not joined again this long after its
 #: restart time is given up on (seconds, on top of the heartbeat timeout)
@@ -97,29 +97,43 @@ def crash(co: Coordinator, i: int, pf: dict[str, Any]) -> None:
         a.dead = True
         co.event("crash", fault=pf["index"], agent=i, epoch=a.epoch, pid=None, directive=True)
     a.record.alive = False
-    if after is not None:
-        a.restart_pending = True
+    if after is None:
+        return
+    a.restart_pending = True
+    if how == "signal":
         co.schedule(co.now_s() + float(after), "restart", lambda: restart(co, a, pf))
+        return
+    # The agent restarts itself: its restart is recorded when it joins again (rejoining),
+    # and given up on if it never does.
+    a.self_restart = pf
+    epoch = a.epoch
+    deadline = co.now_s() + float(after) + REJOIN_GRACE_S + co.opt.heartbeat_timeout
+    co.schedule(deadline, "rejoin-deadline", lambda: _rejoin_deadline(co, a, epoch))
 
 
 def restart(co: Coordinator, a: _Agent, pf: dict[str, Any]) -> None:
-    if co.stop_requested:
+    """Start a crashed agent again through its fork server."""
+    if co.fork is None or co.stop_requested:
         return
     co.event("restart", fault=pf["index"], agent=a.id, previous_epoch=a.epoch)
     a.endpoint = None
-    if co.fork is not None:
-        a.pid = None  # the fork server's spawned reply names the new process
-        co.spawn(a)
-        return
-    # The agent restarts itself; give up on it if it never joins again.
-    epoch = a.epoch
-    deadline = co.now_s() + REJOIN_GRACE_S + co.opt.heartbeat_timeout
-    co.schedule(deadline, "rejoin-deadline", lambda: _rejoin_deadline(co, a, epoch))
+    a.pid = None  # the fork server's spawned reply names the new process
+    co.spawn(a)
+
+
+def rejoining(co: Coordinator, a: _Agent) -> None:
+    """A hello of an agent that restarts itself (told to crash with restart_after_s):
+    its restart, recorded now that it happens."""
+    pf, a.self_restart = a.self_restart, None
+    if pf is not None:
+        co.event("restart", fault=pf["index"], agent=a.id, previous_epoch=a.epoch)
+        a.endpoint = None
 
 
 def _rejoin_deadline(co: Coordinator, a: _Agent, epoch: int) -> None:
     if a.restart_pending and a.epoch == epoch:
         a.restart_pending = False
+        a.self_restart = None
         co.event("rejoin-missed", agent=a.id, epoch=epoch)
 
 

@@ -155,6 +155,8 @@ class _Agent:
     #: a crash fault killed it on purpose; a restart may follow
     crashed_on_purpose: bool = False
     restart_pending: bool = False
+    #: the crash fault of an agent that restarts itself (joined by itself), until it does
+    self_restart: dict[str, Any] | None = None
     restart_state: str = "initial"
     start_iteration: int = 0
     ready_at: float = 0.0
@@ -556,6 +558,8 @@ class Coordinator:
             )
             return
         restart = a.epoch >= 0
+        if restart:
+            process_faults.rejoining(self, a)
         a.epoch += 1
         if a.ident is not None:  # what the old incarnation still sends is no longer its
             self.by_ident.pop(a.ident, None)

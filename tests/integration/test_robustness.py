@@ -339,14 +339,20 @@ def test_old_epoch_and_replayed_frames_are_rejected_over_sockets(
     node: tuple[Node, zmq.Socket, zmq.Socket],
 ) -> None:
     n, pub, _ = node
+    link = n.rx.inlinks[1]
     for s in range(5):
         pub.send(data(s, epoch=0))
+    pub.send(data(0, epoch=1))  # an incarnation the coordinator has not announced: forged
+    pump(n, lambda: 0 in link.counters and link.counters[0].received == 5, "5 frames")
+    pump(n, lambda: link.forged == 1, "the unannounced frame")
+    assert link.epoch == 0 and 1 not in link.counters
+    # the coordinator's peer table announces the restart (same endpoint here)
+    n.apply_peers({1: [pub.getsockopt(zmq.LAST_ENDPOINT).decode(), 1]})
     pub.send(data(0, epoch=1))  # the sender restarted
     for s in range(5, 8):
         pub.send(data(s, epoch=0))  # queued by the dead incarnation
     pub.send(data(0, epoch=1))  # a replay
     pub.send(data(1, epoch=1))
-    link = n.rx.inlinks[1]
 
     def received(ep: int) -> int:
         c = link.counters.get(ep)
@@ -356,7 +362,7 @@ def test_old_epoch_and_replayed_frames_are_rejected_over_sockets(
     old, new = link.counters[0], link.counters[1]
     assert (old.delivered, old.rejected) == (5, 3)
     assert (new.delivered, new.rejected) == (2, 1)
-    assert link.epoch == 1
+    assert link.epoch == 1 and link.forged == 1
     assert n.rx.inbox()[1].iteration == 1
 
 
