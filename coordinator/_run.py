@@ -434,7 +434,10 @@ class Coordinator:
             self.on_hello(ident, msg, user)
             return
         idx = self.by_ident.get(ident)
-        if idx is None:
+        if idx is None:  # well formed, but from no agent of this run: counted, then dropped
+            self.refusals.refuse(
+                "control-refused", f"{kind!r} from a peer that never joined", ident
+            )
             return
         a = self.agents[idx]
         if kind == "bound":

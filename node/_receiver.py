@@ -15,7 +15,7 @@ Rules:
   a frame claiming the sender under another epoch, a non-finite state, or a sequence jump no
   real link makes, is *forged*: counted per in-link (``forged``) and otherwise ignored, so
   that one such frame changes nothing of the link (epoch, sequence, heard, inbox). A jump of
-  more than ``_CONFIRM_JUMP`` is taken only once the next frame continues from it (then the
+  more than ``_CONFIRM_JUMP`` is taken only once the very next frame continues from it (then the
   refused frame counts as lost in transport, not forged); beyond ``_MAX_SEQ_JUMP`` never;
 * in rounds mode a message of iteration k becomes visible at round k + lag, where lag counts
   the whole round periods of its injected delay; in async mode at arrival + delay.
@@ -239,6 +239,8 @@ class Receiver:
                 return
             c.received += 1
             c.max_seq = seq
+            # the real sequence went on: a refused long jump is no longer "the frame before"
+            link.candidate = None
             if iteration > link.last_iter:
                 link.last_iter = iteration
             link.stale = False  # (heard is already set: the first message took the long path)

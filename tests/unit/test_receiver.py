@@ -656,6 +656,23 @@ def test_an_implausible_sequence_jump_is_refused_and_the_link_keeps_working(jump
     assert identity_holds(c)
 
 
+def test_forged_jumps_a_round_apart_do_not_confirm_each_other() -> None:
+    # A forger who sends seq + J in one round and seq + 1 + J in the next: the real frame
+    # between them continued the real sequence, so the second forged frame does not
+    # "continue" the first (it did, before: the link then refused every real frame).
+    r = rx()
+    for s in range(3):
+        r.on_frame(frame(1, s), 0.0)
+    jump = (1 << 20) - 1
+    for s in range(3, 8):
+        r.on_frame(frame(1, s - 1 + jump), 0.0)  # the forged one, just before the real one
+        r.on_frame(frame(1, s), 0.0)
+    c = counters(r, 1)
+    assert (c.max_seq, c.delivered, c.rejected, c.lost_transport) == (7, 8, 0, 0)
+    assert r.inlinks[1].forged == 5
+    assert identity_holds(c)
+
+
 def test_a_long_real_gap_is_taken_once_the_next_frame_continues_it() -> None:
     # A partition can really skip thousands of messages: the first frame after it is
     # refused, the next one confirms the jump, and the refused one counts as lost.
