@@ -110,6 +110,12 @@ def samples_on_disk(out: Path) -> int:
     return n
 
 
+def every_agent_sampled(out: Path, n: int = 4) -> bool:
+    """Every agent's telemetry file holds a sample (the files appear one by one)."""
+    files = [out / "telemetry" / f"agent-{i}.msgpack" for i in range(n)]
+    return all(f.exists() and any(b.get("samples") for b in read_telemetry(f)) for f in files)
+
+
 def wait_until(p: subprocess.Popen, what: str, cond: Any) -> None:
     """Poll ``cond()`` until true; fail (hang guard) if the coordinator ended first."""
     deadline = time.monotonic() + GUARD_S
@@ -359,7 +365,12 @@ def test_sigkill_then_salvage_and_stale_ipc_dir_cleanup(processes, tmp_path, own
     out = tmp_path / "run"
     p = processes.start("run", str(scenario), "--out", str(out), "--quiet", env=env)
     processes.watch_run_dir(out)
-    wait_until(p, "40 telemetry samples", lambda: samples_on_disk(out) >= 40)
+    # every agent has a sample on disk (salvage takes each one's last), and 40 in all
+    wait_until(
+        p,
+        "a sample of every agent and 40 in all",
+        lambda: every_agent_sampled(out) and samples_on_disk(out) >= 40,
+    )
     [stale] = ipc_dirs_of(p.pid, own_tmpdir)
     p.send_signal(signal.SIGKILL)
     assert p.wait(timeout=GUARD_S) == -signal.SIGKILL
