@@ -95,6 +95,37 @@ def _agent(processes: Any, endpoint: str, agent: int, claim_pid: int | None = No
     return p
 
 
+def rounds_scenario(tmp_path: Path, agents: int, iterations: int) -> tuple[Path, Any]:
+    """A rounds-mode ring scenario that never gives a round up, and its clean run (the
+    lockstep engine, same agent core): what an attacked run must end at."""
+    body = (
+        f'mode = "rounds"\niterations = {iterations}\n\n'
+        # generous: a round given up on would change the states (not what is tested here)
+        "[timing]\nround_timeout_ms = 600000.0\n"
+    )
+    sc = _scenario(tmp_path / "s.toml", agents, body)
+    clean = run_scenario(sc, out=tmp_path / "clean", engine="lockstep")
+    assert clean.summary["exit"] == "budget"
+    return sc, clean
+
+
+def start_script(processes: Any, code: str) -> subprocess.Popen:
+    """``python -c code`` in its own process group, killed by the fixture's teardown."""
+    p = subprocess.Popen(
+        [sys.executable, "-c", code], start_new_session=True, stderr=subprocess.PIPE, text=True
+    )
+    processes.groups.add(p.pid)
+    processes.popen.append(p)
+    return p
+
+
+def final_states(run_dir: Path, agents: int, iterations: int) -> np.ndarray:
+    """Every agent's final state, each checked to have run all ``iterations``."""
+    finals = json.loads((run_dir / "final_states.json").read_text())
+    assert [f["iteration"] for f in finals] == [iterations] * agents, finals
+    return np.asarray([f["x"] for f in finals])
+
+
 class _Coordinator(threading.Thread):
     """A ``--no-launch`` coordinator run through the Python API in a thread, with a join
     deadline generous enough for agents started slowly on a loaded machine."""
@@ -287,35 +318,24 @@ sys.exit(r.main({endpoint!r}, {agent}))
 
 def test_forged_and_junk_data_frames_are_counted_and_change_nothing(processes, tmp_path):
     n, v, iterations = 4, 2, 60
-    body = (
-        f'mode = "rounds"\niterations = {iterations}\n\n'
-        # generous: a round given up on would change the states (not what is tested here)
-        "[timing]\nround_timeout_ms = 600000.0\n"
-    )
-    sc = _scenario(tmp_path / "s.toml", n, body)
-    clean = run_scenario(sc, out=tmp_path / "clean", engine="lockstep")
-    assert clean.summary["exit"] == "budget"
+    sc, clean = rounds_scenario(tmp_path, n, iterations)
 
     out = tmp_path / "run"
     coord = _Coordinator(sc, out)
     code = INJECTOR.format(inject_at=set(INJECT_AT), endpoint=coord.endpoint, agent=v)
-    injector = subprocess.Popen(
-        [sys.executable, "-c", code], start_new_session=True, stderr=subprocess.PIPE, text=True
-    )
-    processes.groups.add(injector.pid)
-    processes.popen.append(injector)
+    injector = start_script(processes, code)
     agents = [_agent(processes, coord.endpoint, i) for i in range(n) if i != v]
     result = coord.finish()
     for p in [*agents, injector]:
         assert p.wait(timeout=30) == 0, p.stderr.read()[-2000:]
     assert result.summary["exit"] == "budget" and result.summary["verdict"] != "diverged"
 
-    def states(run_dir: Path) -> np.ndarray:
-        finals = json.loads((run_dir / "final_states.json").read_text())
-        assert [f["iteration"] for f in finals] == [iterations] * n, finals
-        return np.asarray([f["x"] for f in finals])
-
-    np.testing.assert_allclose(states(out), states(clean.run_dir), rtol=0, atol=1e-9)
+    np.testing.assert_allclose(
+        final_states(out, n, iterations),
+        final_states(clean.run_dir, n, iterations),
+        rtol=0,
+        atol=1e-9,
+    )
 
     rounds = len(INJECT_AT)
     outs = sorted(load(sc).topology.out_neighbours(v))

@@ -22,10 +22,7 @@ from __future__ import annotations
 import csv
 import json
 import random
-import subprocess
-import sys
 import time
-from pathlib import Path
 
 import msgpack
 import numpy as np
@@ -33,9 +30,14 @@ import pytest
 import zmq
 
 from coordinator._api import load
-from coordinator._api import run as run_scenario
 from node._wire import PROTOCOL, encode_control
-from tests.integration.test_attacks import _agent, _Coordinator, _scenario
+from tests.integration.test_attacks import (
+    _agent,
+    _Coordinator,
+    final_states,
+    rounds_scenario,
+    start_script,
+)
 from tests.integration.test_robustness import events
 
 pytestmark = pytest.mark.integration
@@ -136,14 +138,7 @@ def test_a_seeded_attacker_changes_no_state_and_every_attack_frame_is_counted(pr
     plan = attack_plan(rng)
     flood = flood_frames(rng)
     assert plan and len(flood) == sum(FLOOD.values())
-    body = (
-        f'mode = "rounds"\niterations = {ITERATIONS}\n\n'
-        # generous: a round given up on would change the states (not what is tested here)
-        "[timing]\nround_timeout_ms = 600000.0\n"
-    )
-    sc = _scenario(tmp_path / "s.toml", N, body)
-    clean = run_scenario(sc, out=tmp_path / "clean", engine="lockstep")
-    assert clean.summary["exit"] == "budget"
+    sc, clean = rounds_scenario(tmp_path, N, ITERATIONS)
 
     out = tmp_path / "run"
     coord = _Coordinator(sc, out)
@@ -157,11 +152,7 @@ def test_a_seeded_attacker_changes_no_state_and_every_attack_frame_is_counted(pr
         endpoint=coord.endpoint,
         agent=ATTACKER,
     )
-    attacker = subprocess.Popen(
-        [sys.executable, "-c", code], start_new_session=True, stderr=subprocess.PIPE, text=True
-    )
-    processes.groups.add(attacker.pid)
-    processes.popen.append(attacker)
+    attacker = start_script(processes, code)
     agents = [_agent(processes, coord.endpoint, i) for i in range(N) if i != ATTACKER]
 
     # the control flood, while the swarm stands at HOLD_AT
@@ -202,12 +193,12 @@ def test_a_seeded_attacker_changes_no_state_and_every_attack_frame_is_counted(pr
     assert summary["exit"] == "budget" and summary["verdict"] != "diverged", summary["exit"]
 
     # no state changed: the clean run's, to 1e-9
-    def states(run_dir: Path) -> np.ndarray:
-        finals = json.loads((run_dir / "final_states.json").read_text())
-        assert [f["iteration"] for f in finals] == [ITERATIONS] * N, finals
-        return np.asarray([f["x"] for f in finals])
-
-    np.testing.assert_allclose(states(out), states(clean.run_dir), rtol=0, atol=1e-9)
+    np.testing.assert_allclose(
+        final_states(out, N, ITERATIONS),
+        final_states(clean.run_dir, N, ITERATIONS),
+        rtol=0,
+        atol=1e-9,
+    )
 
     # every data attack frame counted, per link, in the summary and in events.jsonl
     outs = sorted(load(sc).topology.out_neighbours(ATTACKER))
